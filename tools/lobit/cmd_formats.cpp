@@ -1,0 +1,34 @@
+// `lobit formats`: the presets, one line each.
+#include <fmt/format.h>
+
+#include "common.hpp"
+#include "lobit/format/spec.hpp"
+
+namespace lobit::cli {
+
+void add_formats_command(CLI::App& app) {
+  auto* cmd = app.add_subcommand("formats", "List the named presets with a one-line description");
+  auto json = std::make_shared<bool>(false);
+  cmd->add_flag("--json", *json, "Print a JSON array");
+  cmd->callback([json] {
+    if (*json) {
+      nlohmann::json arr = nlohmann::json::array();
+      for (const auto& p : presets()) {
+        auto f = parse_element(p.name);
+        arr.push_back({{"name", p.name}, {"aliases", p.aliases}, {"bits", f->bits()}, {"summary", p.summary},
+                       {"source", p.source}, {"format", f->spec()}});
+      }
+      print_json(arr);
+      return;
+    }
+    std::size_t w = 0;
+    for (const auto& p : presets()) w = std::max(w, p.name.size());
+    for (const auto& p : presets()) {
+      std::string aka;
+      if (!p.aliases.empty()) aka = fmt::format("  (also {})", fmt::join(p.aliases, ", "));
+      fmt::print("{:<{}}  {}{}\n", p.name, w, p.summary, aka);
+    }
+  });
+}
+
+}  // namespace lobit::cli
