@@ -177,8 +177,11 @@ Code Minifloat::encode(double x, Rounding r, Overflow o, std::uint32_t random_wo
   }
   const bool neg = std::signbit(x);
   if (neg && !p_.sign) {
-    // Unsigned: everything below zero lies under the range [0, max].
-    if (x != 0 && r == Rounding::down && resolve(o) == Overflow::special && nan_code_) return *nan_code_;
+    // Unsigned: everything below zero lies under the range [0, max]. It
+    // saturates to 0, except where it overflows downward (-inf, or rounding
+    // down) under the special policy and the format has a NaN.
+    const bool downward = std::isinf(x) || (x != 0 && r == Rounding::down);
+    if (downward && resolve(o) == Overflow::special && nan_code_) return *nan_code_;
     return 0;
   }
   if (std::isinf(x)) {

@@ -220,7 +220,10 @@ Code ValueTable::encode(double x, Rounding r, Overflow o, std::uint32_t random_w
                                                                      : thresholds_[i].away_to_upper));
       break;
     }
-    case Rounding::toward_zero: take_upper = hi <= 0; break;
+    case Rounding::toward_zero:
+      // A cell that spans zero (no zero value): stay on the input's side.
+      take_upper = hi <= 0 ? true : (lo >= 0 ? false : x > 0);
+      break;
     case Rounding::up: take_upper = true; break;
     case Rounding::down: take_upper = false; break;
     case Rounding::stochastic: {

@@ -9,7 +9,7 @@
 namespace lobit {
 
 struct Remainder {
-  int half_cmp = 0;          // remainder compared with half a spacing: -1, 0, +1
+  int half_cmp = -1;         // remainder compared with half a spacing: -1, 0, +1 (exact: -1)
   bool inexact = false;      // remainder is non-zero
   std::uint32_t top32 = 0;   // remainder as a fraction of a spacing, truncated to 32 bits
 };

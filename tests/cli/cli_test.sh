@@ -1,0 +1,107 @@
+#!/usr/bin/env bash
+# End-to-end checks of the lobit binary: outputs, JSON shapes, exit statuses.
+# Usage: cli_test.sh path/to/lobit
+set -uo pipefail
+LOBIT="$1"
+pass=0
+fail=0
+tmp=$(mktemp -d)
+trap 'rm -rf "$tmp"' EXIT
+
+ok()   { pass=$((pass + 1)); }
+bad()  { fail=$((fail + 1)); echo "FAIL: $*"; }
+
+# expect_exit STATUS CMD...: runs lobit with arguments; checks the status.
+expect_exit() {
+  local want=$1; shift
+  "$LOBIT" "$@" >"$tmp/out" 2>"$tmp/err"
+  local got=$?
+  if [ "$got" -eq "$want" ]; then ok; else bad "lobit $* exited $got, wanted $want; stderr: $(cat "$tmp/err")"; fi
+}
+# expect_error CMD...: exit 2, one-line error on stderr, nothing on stdout.
+expect_error() {
+  expect_exit 2 "$@"
+  if [ -s "$tmp/out" ]; then bad "lobit $*: printed on stdout: $(head -c 200 "$tmp/out")"; else ok; fi
+  if [ "$(wc -l <"$tmp/err")" -eq 1 ] && grep -q '^lobit: error: ' "$tmp/err"; then ok; else bad "lobit $*: stderr not one error line: $(cat "$tmp/err")"; fi
+}
+# py EXPR: evaluates a Python expression over the JSON in $tmp/out (as j); must be true.
+py() {
+  if python3 -c "import json,sys; j=json.load(open('$tmp/out')); sys.exit(0 if ($1) else 1)"; then ok; else bad "json check failed: $1"; fi
+}
+
+expect_exit 0 --version
+grep -Eq '^lobit [0-9]+\.[0-9]+\.[0-9]+ \(git [0-9a-f]+(-dirty)?|unknown\)' "$tmp/out" && ok || bad "--version: $(cat "$tmp/out")"
+
+expect_exit 0 formats
+for p in e4m3 e5m2 e3m2 e2m3 e2m1 e8m0 fp16 bf16 fp32 int2 int8 uint2 uint8 nf4; do
+  grep -q "^$p " "$tmp/out" && ok || bad "formats does not list $p"
+done
+expect_exit 0 formats --json
+py "len(j) >= 28 and all('summary' in p and 'source' in p for p in j)"
+
+# inspect --json: the keys the docs promise. OCP OFP8 E4M3: max 448, min normal 2^-6, min subnormal 2^-9 (from memory)
+expect_exit 0 inspect e4m3 --json
+py "j['format'] == 'float+exp=4+man=3+bias=7+special=top-nan' and j['bits'] == 8"
+py "j['max'] == 448 and j['min_normal'] == 2**-6 and j['min_subnormal'] == 2**-9 and j['distinct_finite'] == 253"
+py "len(j['codes']) == 256 and j['codes'][0x7f]['value'] == 'nan' and j['codes'][0x7f]['class'] == 'nan'"
+py "j['codes'][0x80]['value'] == 0 and str(j['codes'][0x80]['value']) == '-0.0'"
+py "all(set(c) >= {'code','hex','value','class'} for c in j['codes'])"
+grep -q '"value": -0.0' "$tmp/out" && ok || bad "negative zero not printed as -0.0"
+
+expect_exit 0 inspect int4 --json
+py "j['min_normal'] is None and j['min_subnormal'] is None and j['max'] == 7 and j['lowest'] == -8"
+expect_exit 0 inspect fp32 --json
+py "j['codes'] is None and j['max'] == 3.4028234663852886e+38 and j['min_subnormal'] == 2**-149"
+expect_exit 0 inspect e5m2 --json
+py "j['codes'][0x7c]['value'] == 'inf' and j['codes'][0xfc]['value'] == '-inf'"
+py "j['nearest_overflow_threshold']['value'] == 61440 and j['nearest_overflow_threshold']['tie_overflows']"
+
+expect_exit 0 inspect e2m1
+grep -q '0x7  0.11.1  normal     6.0' "$tmp/out" && ok || bad "inspect e2m1 table row"
+grep -q '^max finite        6.0' "$tmp/out" && ok || bad "inspect e2m1 max"
+
+# encode: the IEEE overflow points from the issue (e5m2 from 61440, fp16 from 65520), E4M3 464 -> 448.
+expect_exit 0 encode e5m2 61440 61439.99 --json
+py "j[0]['value'] == 'inf' and j[1]['value'] == 57344"
+expect_exit 0 encode fp16 65520 65519.99 --json
+py "j[0]['value'] == 'inf' and j[1]['value'] == 65504"
+expect_exit 0 encode e4m3 464 -1.3 --json
+py "j[0]['code'] == 0x7e and j[0]['value'] == 448 and j[1]['value'] == -1.25 and set(j[0]) >= {'input','code','value'}"
+expect_exit 0 encode e4m3 500 --overflow special --json
+py "j[0]['value'] == 'nan'"
+for mode in nearest-even nearest-away toward-zero up down stochastic; do
+  expect_exit 0 encode int4 2.5 -2.5 --round "$mode" --json
+done
+expect_exit 0 encode int4 2.5 --round nearest-away --json
+py "j[0]['value'] == 3"
+expect_exit 0 encode e2m1 1.25 1.25 1.25 1.25 --round stochastic --seed 9 --json
+cp "$tmp/out" "$tmp/sr1"
+expect_exit 0 encode e2m1 1.25 1.25 1.25 1.25 --round stochastic --seed 9 --json
+cmp -s "$tmp/out" "$tmp/sr1" && ok || bad "stochastic rounding is not reproducible with a seed"
+expect_exit 0 encode e4m3 0x3c00 --from fp16 --json
+py "j[0]['input'] == 1.0 and j[0]['code'] == 0x38"
+
+expect_exit 0 decode e4m3 0x7e 126 0b01111110 --json
+py "all(e['value'] == 448 for e in j)"
+expect_exit 0 decode int8-frac6 0x80 --json
+py "j[0]['class'] == 'unused' and j[0]['value'] is None"
+
+# Bad input: exit 2, a one-line error, nothing on stdout.
+expect_error inspect e4m4x
+grep -q 'did you mean' "$tmp/err" && ok || bad "no suggestion for an unknown format"
+expect_error inspect "e4m3+bias=1100"
+expect_error inspect "int+bits=20"
+expect_error encode e4m3 1.2.3
+expect_error encode e4m3 1 --round sideways
+expect_error encode e2m1 nan
+expect_error encode e4m3 1e999
+expect_error decode e4m3 0x100
+expect_error decode e4m3 zz
+expect_error decode int4 16
+expect_error inspect
+expect_error frobnicate
+expect_error inspect "e2m1@32:e8m0"
+expect_error encode e4m3 0x1ffff --from fp16
+
+echo "cli: $pass passed, $fail failed"
+[ "$fail" -eq 0 ]
