@@ -35,7 +35,10 @@ Codebook::Codebook(std::vector<double> values, int bits, std::string generator)
 std::string Codebook::spec() const {
   if (!generator_.empty()) return generator_;
   std::string s = "codebook+values=";
-  for (std::size_t i = 0; i < values_.size(); ++i) s += (i ? "/" : "") + fmt::format("{}", values_[i]);
+  for (std::size_t i = 0; i < values_.size(); ++i) {
+    if (i) s += '/';
+    s += fmt::format("{}", values_[i]);
+  }
   if (bits_ != static_cast<int>(std::bit_width(values_.size() - 1))) s += fmt::format("+bits={}", bits_);
   return s;
 }

@@ -36,8 +36,8 @@ void add_decode_command(CLI::App& app) {
       print_json(arr);
       return;
     }
-    fmt::print("# {}\n", f->spec());
-    const int cw = (f->bits() + 3) / 4 + 2, bw = std::max(f->bits() + 2, 4);
+    fmt::print("# {}\n", format_title(o->spec, *f));
+    const int cw = std::max((f->bits() + 3) / 4 + 2, 4), bw = std::max(f->bits() + 2, 4);
     fmt::print("{:<{}}  {:<{}}  {:<9}  {:<24}  {}\n", "code", cw, "bits", bw, "class", "value", "exact");
     for (Code c : codes) {
       const CodeClass k = f->classify(c);

@@ -74,14 +74,14 @@ void add_encode_command(CLI::App& app) {
       print_json(arr);
       return;
     }
-    fmt::print("# {}  rounding {}  overflow {}\n", f->spec(), to_string(*r), to_string(f->resolve(*ov)));
-    fmt::print("{:<24}  {:<{}}  {:<24}  {:<10}  {}\n", "input", "code", (f->bits() + 3) / 4 + 2, "value", "class",
+    fmt::print("# {}  rounding {}  overflow {}\n", format_title(o->spec, *f), to_string(*r), to_string(f->resolve(*ov)));
+    fmt::print("{:<24}  {:<{}}  {:<24}  {:<10}  {}\n", "input", "code", std::max((f->bits() + 3) / 4 + 2, 4), "value", "class",
                "value - input (binary64)");
     for (std::size_t i = 0; i < in.size(); ++i) {
       const double v = f->decode(codes[i]);
       const double err = (std::isfinite(v) && std::isfinite(in[i])) ? v - in[i] : NAN;
       fmt::print("{:<24}  {:<{}}  {:<24}  {:<10}  {}\n", number_text(in[i]), code_hex(codes[i], f->bits()),
-                 (f->bits() + 3) / 4 + 2, number_text(v), to_string(f->classify(codes[i])),
+                 std::max((f->bits() + 3) / 4 + 2, 4), number_text(v), to_string(f->classify(codes[i])),
                  std::isnan(err) ? std::string("-") : number_text(err));
     }
   });

@@ -116,14 +116,15 @@ void print_text(const ElementFormat& f, const Preset* preset, const FormatProper
   auto vn = f.virtual_next_above_max();
   if (vn && (f.has_infinity() || f.nan_code())) {
     const Threshold th = midpoint(p.max_finite, vn->value);
-    where = fmt::format("; nearest rounding overflows at |x| {} {} (with --overflow special: {})",
-                        vn->tie_goes_up ? ">=" : ">", number_text(th.nearest),
-                        f.has_infinity() ? "infinity" : "NaN");
+    where = fmt::format("; nearest rounding overflows at |x| {} {}", vn->tie_goes_up ? ">=" : ">",
+                        number_text(th.nearest));
+    if (res == Overflow::saturate)
+      where += fmt::format(" (under --overflow special it gives {})", f.has_infinity() ? "infinity" : "NaN");
   }
   fmt::print("overflow          policy {}: past max finite {}{}\n", to_string(res), beyond, where);
 
   if (!t || !codes) return;
-  fmt::print("\n{:<{}}  {:<{}}  {:<9}  {:<24}  {}\n", "code", (f.bits() + 3) / 4 + 2, "bits",
+  fmt::print("\n{:<{}}  {:<{}}  {:<9}  {:<24}  {}\n", "code", std::max((f.bits() + 3) / 4 + 2, 4), "bits",
              std::max<int>(f.bits() + 2, 4), "class", "value", "inputs that round here (nearest-even)");
   const Code n = Code{1} << f.bits();
   for (Code c = 0; c < n; ++c) {
@@ -137,7 +138,7 @@ void print_text(const ElementFormat& f, const Preset* preset, const FormatProper
     else right = "-";
     const std::string desc = f.describe_code(c);
     if (!desc.empty() && k != CodeClass::infinity) right += "   " + desc;
-    fmt::print("{:<{}}  {:<{}}  {:<9}  {:<24}  {}\n", code_hex(c, f.bits()), (f.bits() + 3) / 4 + 2,
+    fmt::print("{:<{}}  {:<{}}  {:<9}  {:<24}  {}\n", code_hex(c, f.bits()), std::max((f.bits() + 3) / 4 + 2, 4),
                code_fields(f, c), std::max<int>(f.bits() + 2, 4), to_string(k), value, right);
   }
 }

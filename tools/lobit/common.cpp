@@ -55,6 +55,13 @@ std::string code_fields(const ElementFormat& f, Code c) {
   return bin;
 }
 
+std::string format_title(const std::string& given, const ElementFormat& f) {
+  const std::string canon = f.spec();
+  if (canon == given) return canon;
+  if (canon.size() <= 100) return given + " = " + canon;
+  return fmt::format("{} ({}, {} bits)", given, f.family(), f.bits());
+}
+
 double parse_number(const std::string& text, const std::string& where) {
   char* end = nullptr;
   errno = 0;

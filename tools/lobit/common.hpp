@@ -19,6 +19,10 @@ std::string code_hex(Code c, int bits);
 // Code bits split into fields for display, e.g. "0.1110.110" (floats), or plain binary.
 std::string code_fields(const ElementFormat& f, Code c);
 
+// Header text for a format the user named: their spelling, then the canonical
+// spec where it differs and stays readable.
+std::string format_title(const std::string& given, const ElementFormat& f);
+
 // Strict parsing; `where` names the argument for the error message.
 double parse_number(const std::string& text, const std::string& where);
 Code parse_code(const std::string& text, const ElementFormat& f, const std::string& where);
@@ -30,5 +34,6 @@ void add_formats_command(CLI::App& app);
 void add_inspect_command(CLI::App& app);
 void add_encode_command(CLI::App& app);
 void add_decode_command(CLI::App& app);
+void add_compare_command(CLI::App& app);
 
 }  // namespace lobit::cli

@@ -19,6 +19,7 @@ int main(int argc, char** argv) {
   lobit::cli::add_inspect_command(app);
   lobit::cli::add_encode_command(app);
   lobit::cli::add_decode_command(app);
+  lobit::cli::add_compare_command(app);
   try {
     app.parse(argc, argv);
   } catch (const CLI::CallForHelp& e) {
