@@ -110,7 +110,7 @@ double Minifloat::decode(Code code) const {
   const CodeClass c = classify(code);
   const bool neg = (code & sign_bit_) != 0;
   const Code mag = code & ~sign_bit_;
-  double v;
+  double v = 0;
   switch (c) {
     case CodeClass::nan:
     case CodeClass::unused: return std::numeric_limits<double>::quiet_NaN();

@@ -7,7 +7,6 @@
 #include <fstream>
 #include <map>
 #include <optional>
-#include <regex>
 #include <sstream>
 #include <tuple>
 #include <toml++/toml.h>
@@ -200,18 +199,35 @@ std::shared_ptr<const ElementFormat> build_normal_quantile(int bits, std::option
   return std::make_shared<Codebook>(levels, bits, gen);
 }
 
-std::optional<std::pair<int, int>> exmy(std::string_view head) {
-  static const std::regex re("e([0-9]+)m([0-9]+)");
-  std::cmatch m;
-  if (!std::regex_match(head.begin(), head.end(), m, re)) return std::nullopt;
-  return std::pair{std::stoi(m[1].str()), std::stoi(m[2].str())};
+// Digits only, as a small int (empty or too long: nullopt).
+std::optional<int> small_number(std::string_view s) {
+  if (s.empty() || s.size() > 4) return std::nullopt;
+  int v = 0;
+  for (char c : s) {
+    if (c < '0' || c > '9') return std::nullopt;
+    v = v * 10 + (c - '0');
+  }
+  return v;
 }
 
+// "eXmY" -> (X, Y)
+std::optional<std::pair<int, int>> exmy(std::string_view head) {
+  if (head.size() < 4 || head[0] != 'e') return std::nullopt;
+  const std::size_t m = head.find('m');
+  if (m == std::string_view::npos) return std::nullopt;
+  auto e = small_number(head.substr(1, m - 1));
+  auto man = small_number(head.substr(m + 1));
+  if (!e || !man) return std::nullopt;
+  return std::pair{*e, *man};
+}
+
+// "intN" / "uintN" -> (signed, N)
 std::optional<std::pair<bool, int>> intn(std::string_view head) {
-  static const std::regex re("(u?)int([0-9]+)");
-  std::cmatch m;
-  if (!std::regex_match(head.begin(), head.end(), m, re)) return std::nullopt;
-  return std::pair{m[1].length() == 0, std::stoi(m[2].str())};
+  const bool is_unsigned = head.rfind("uint", 0) == 0;
+  if (!is_unsigned && head.rfind("int", 0) != 0) return std::nullopt;
+  auto n = small_number(head.substr(is_unsigned ? 4 : 3));
+  if (!n) return std::nullopt;
+  return std::pair{!is_unsigned, *n};
 }
 
 }  // namespace
