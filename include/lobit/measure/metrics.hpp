@@ -1,0 +1,70 @@
+#pragma once
+// Mergeable error accumulators. Floating sums are merged in a fixed order by
+// the caller (chunk order), integer counts in any order, so results do not
+// depend on the thread count.
+#include <cstdint>
+#include <optional>
+#include <vector>
+
+#include "lobit/scale/quantize.hpp"
+
+namespace lobit {
+
+struct ErrorSums {
+  std::uint64_t n = 0;          // finite inputs scored
+  std::uint64_t nonzero = 0;    // of them, non-zero
+  std::uint64_t clipped = 0;    // beyond the largest element magnitude at their scale
+  std::uint64_t zeroed = 0;     // non-zero inputs that quantized to 0
+  std::uint64_t nonfinite = 0;  // NaN/inf inputs (kept out of every sum)
+  std::uint64_t nan_outputs = 0;  // finite inputs in groups that decode to NaN (kept out)
+  double sum_x = 0, sum_x2 = 0, sum_err2 = 0, sum_rel = 0;
+  double max_abs_err = 0, max_abs_x = 0;
+  std::uint64_t top_n = 0;      // inputs at or above the top-magnitude threshold
+  double top_err2 = 0;
+  // Groups as resampling units for the confidence interval of the MSE.
+  std::uint64_t units = 0;
+  double u_e = 0, u_e2 = 0, u_n = 0, u_n2 = 0, u_en = 0;
+  std::uint64_t groups = 0, saturated_groups = 0, underflow_groups = 0, nan_groups = 0;
+
+  void merge(const ErrorSums& o);
+};
+
+// Accumulates the groups quantize_rows hands out.
+class ErrorAccumulator {
+ public:
+  ErrorAccumulator(const ScaledFormat& f, double top_threshold);
+
+  void add(const GroupView& g);
+  ErrorSums& sums() { return s_; }
+  const ErrorSums& sums() const { return s_; }
+  std::vector<std::uint64_t>& histogram() { return hist_; }
+
+ private:
+  const ScaledFormat& f_;
+  double top_threshold_;
+  double emax_;
+  bool affine_;
+  Code qmax_code_ = 0;
+  ErrorSums s_;
+  std::vector<std::uint64_t> hist_;  // element code usage (formats up to 16 bits)
+};
+
+struct ErrorReport {
+  std::uint64_t n = 0;
+  double mse = 0, mse_normalised = 0;
+  std::optional<double> sqnr_db;  // empty when lossless
+  bool lossless = false;
+  double mse_stderr = 0;           // from the group-level spread
+  std::optional<double> sqnr_low, sqnr_high;  // 95% interval
+  double max_abs_err = 0, max_err_rel_absmax = 0, mean_rel_err = 0;
+  double clip_rate = 0, zero_rate = 0;
+  std::uint64_t top_n = 0;
+  double top_mse = 0;
+  std::uint64_t codes_used = 0;
+  double entropy_bits = 0;
+  std::uint64_t groups = 0, saturated_groups = 0, underflow_groups = 0, nan_groups = 0, nonfinite = 0;
+};
+
+ErrorReport make_report(const ErrorSums& s, const std::vector<std::uint64_t>& hist);
+
+}  // namespace lobit

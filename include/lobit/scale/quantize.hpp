@@ -1,0 +1,162 @@
+#pragma once
+// Quantizing groups and tensors with a scaled format: the exact definition
+// every fast path and every generated kernel must reproduce.
+//
+// For a group with decoded scale s (s = tensor scale * stored block scale):
+//   code = encode_element(x / s)       x / s is the correctly rounded binary64 quotient;
+//                                      elements always saturate (Overflow::saturate)
+//   value = s * decode(code)           binary64 product
+// Affine groups (zero=FMT): s = (max - min) / qmax rounded into the scale format,
+//   z = -min / s rounded into the zero format (nearest-even; unsigned ints clamp),
+//   q = encode_unsigned(x / s + z), value = s * (q - z).
+// Shared micro-exponents (sub=K2:D2): the block exponent E comes from the MX
+//   rule; each K2-element sub-block takes the offset d = min(2^D2 - 1, E - e_sub),
+//   e_sub its own MX exponent, and scale 2^(E - d).
+#include <cstdint>
+#include <span>
+#include <type_traits>
+#include <vector>
+
+#include "lobit/scale/scaled_format.hpp"
+
+namespace lobit {
+
+// What a group's scale was and what happened choosing it.
+struct GroupScale {
+  double scale = 1;        // decoded scale the elements use (includes the tensor scale)
+  Code scale_code = 0;     // code of the stored block scale
+  double zero = 0;         // affine: decoded zero point
+  Code zero_code = 0;
+  bool saturated = false;  // the needed scale exceeded the scale format: elements clip
+  bool underflow = false;  // the needed scale was below the scale format's smallest: group flushed
+  bool nan = false;        // a NaN or infinity in the group: the group decodes to NaN
+};
+
+// Summary of a group's inputs (finite values only; nonfinite counted).
+struct GroupSummary {
+  double amax = 0, min = 0, max = 0;
+  std::size_t nonfinite = 0;
+};
+GroupSummary summarize(const float* x, std::size_t n, std::size_t stride);
+
+class GroupQuantizer {
+ public:
+  // tensor_scale: the decoded per-tensor scale of two-level formats (1 otherwise).
+  explicit GroupQuantizer(const ScaledFormat& f, double tensor_scale = 1.0);
+
+  const ScaledFormat& format() const { return f_; }
+  double tensor_scale() const { return tensor_scale_; }
+
+  // The scale for a group from its summary (rules mx, absmax, noclip). The mse
+  // rule also needs the values (x, n, stride).
+  GroupScale choose(const GroupSummary& s, const float* x = nullptr, std::size_t n = 0, std::size_t stride = 1) const;
+  // The scale stored as given (double quantization hands in decoded scales).
+  GroupScale with_scale(double decoded_block_scale, const GroupSummary& s) const;
+
+  // Quantizes n strided elements with the chosen scale: codes and dequantized
+  // values (either output may be null). Returns the sum of squared errors.
+  double quantize(const float* x, std::size_t n, std::size_t stride, const GroupScale& g, Code* codes,
+                  double* values) const;
+
+  // For micro-exponent formats: the per-sub-block scale offsets of a block.
+  void sub_offsets(const float* x, std::size_t n, std::size_t stride, const GroupScale& g,
+                   std::vector<int>& out) const;
+
+  double element_max() const { return emax_value_; }
+
+ private:
+  GroupScale from_target(double target, const GroupSummary& s, Rounding r) const;
+
+  const ScaledFormat& f_;
+  double tensor_scale_;
+  double emax_value_;       // element max magnitude
+  int emax_exp_;            // ilogb(element max)
+  int scale_lo_exp_ = 0, scale_hi_exp_ = 0;  // pow2 scale exponent range
+  std::shared_ptr<const ElementFormat> unsigned_element_;  // affine
+  double qmax_ = 0;         // affine: largest unsigned code value
+};
+
+// What quantizing a tensor needs beyond one chunk of rows: the per-tensor
+// scale, per-column summaries, and (double quantization) every decoded group
+// scale. Built by one pass over the data.
+struct TensorPlan {
+  std::uint64_t rows = 0, cols = 0;
+  int axis = 1;
+  double tensor_amax = 0;
+  double tensor_scale = 1;                 // two-level formats
+  GroupSummary tensor_summary;             // @tensor
+  std::vector<GroupSummary> col_summary;   // @col
+  std::vector<double> dq_scales;           // double quantization: decoded block scales by group index
+  std::uint64_t group_count = 0;
+  std::uint64_t blocks_along = 0;          // blocks per row (axis 1) or per column (axis 0)
+  bool ragged = false;                     // the last block along the axis is short
+};
+
+// One pass that needs the whole tensor (row chunks in order through `next`).
+class PlanBuilder {
+ public:
+  PlanBuilder(const ScaledFormat& f, std::uint64_t rows, std::uint64_t cols, int axis);
+  // Rows row0 .. row0 + nrows - 1, row-major, in increasing order.
+  void add_rows(std::uint64_t row0, std::uint64_t nrows, const float* data);
+  TensorPlan finish();
+  bool needs_data() const { return needs_data_; }  // false: the plan is known from the shape alone
+
+ private:
+  const ScaledFormat& f_;
+  TensorPlan p_;
+  bool needs_data_ = false;
+  std::vector<double> first_level_;  // double quantization: first-level scales by group index
+};
+
+// Everything quantize_rows hands the visitor for one group.
+struct GroupView {
+  std::uint64_t index;          // group index (row-major over (row, block) for axis 1)
+  const float* x;               // first input element
+  std::size_t n, stride;
+  const Code* codes;            // n codes
+  const double* values;         // n dequantized values
+  const GroupScale* scale;
+};
+
+// Quantizes rows row0 .. row0 + nrows - 1 (row-major data), calling visit(GroupView)
+// for every group. For axis 0 blocks nrows must be a multiple of the block size
+// unless the chunk ends the tensor.
+template <class Visit>
+void quantize_rows(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+                   const float* data, Visit&& visit);
+
+// Quantized form of a whole tensor, for dumps and tests.
+struct QuantizedTensor {
+  std::vector<Code> codes;     // row-major like the input
+  std::vector<double> values;  // dequantized, row-major
+  std::vector<double> scales;  // decoded group scales in group order
+  std::vector<Code> scale_codes;
+  std::vector<double> zeros;   // affine only
+  double tensor_scale = 1;
+  std::uint64_t groups = 0, saturated_groups = 0, underflow_groups = 0, nan_groups = 0;
+};
+
+// rows x cols row-major data; axis: the reduction axis (1: blocks along a row,
+// 0: down a column).
+QuantizedTensor quantize_tensor(const ScaledFormat& f, std::span<const float> data, std::uint64_t rows,
+                                std::uint64_t cols, int axis = 1);
+
+// The per-tensor scale of a two-level format: amax / (element max * block-scale max),
+// rounded to nearest in the tensor-scale format (1 when amax is 0).
+double two_level_tensor_scale(const ScaledFormat& f, double tensor_amax);
+
+namespace detail {
+using GroupFn = void (*)(void* ctx, const GroupView& g);
+void quantize_rows_impl(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+                        const float* data, void* ctx, GroupFn fn);
+}  // namespace detail
+
+template <class Visit>
+void quantize_rows(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+                   const float* data, Visit&& visit) {
+  detail::quantize_rows_impl(f, plan, row0, nrows, data, &visit, [](void* ctx, const GroupView& g) {
+    (*static_cast<std::remove_reference_t<Visit>*>(ctx))(g);
+  });
+}
+
+}  // namespace lobit

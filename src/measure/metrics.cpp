@@ -1,0 +1,154 @@
+#include "lobit/measure/metrics.hpp"
+
+#include <cmath>
+
+namespace lobit {
+
+void ErrorSums::merge(const ErrorSums& o) {
+  n += o.n;
+  nonzero += o.nonzero;
+  clipped += o.clipped;
+  zeroed += o.zeroed;
+  nonfinite += o.nonfinite;
+  nan_outputs += o.nan_outputs;
+  sum_x += o.sum_x;
+  sum_x2 += o.sum_x2;
+  sum_err2 += o.sum_err2;
+  sum_rel += o.sum_rel;
+  max_abs_err = std::max(max_abs_err, o.max_abs_err);
+  max_abs_x = std::max(max_abs_x, o.max_abs_x);
+  top_n += o.top_n;
+  top_err2 += o.top_err2;
+  units += o.units;
+  u_e += o.u_e;
+  u_e2 += o.u_e2;
+  u_n += o.u_n;
+  u_n2 += o.u_n2;
+  u_en += o.u_en;
+  groups += o.groups;
+  saturated_groups += o.saturated_groups;
+  underflow_groups += o.underflow_groups;
+  nan_groups += o.nan_groups;
+}
+
+ErrorAccumulator::ErrorAccumulator(const ScaledFormat& f, double top_threshold)
+    : f_(f), top_threshold_(top_threshold), affine_(f.zero != nullptr) {
+  const GroupQuantizer q(f);
+  emax_ = q.element_max();
+  if (affine_) qmax_code_ = (Code{1} << f.element->bits()) - 1;
+  if (f.element->bits() <= 16) hist_.assign(std::size_t{1} << f.element->bits(), 0);
+}
+
+void ErrorAccumulator::add(const GroupView& g) {
+  const GroupScale& sc = *g.scale;
+  // Tensor and column groups arrive in several visits: the caller counts those.
+  if (f_.granularity != Granularity::tensor && f_.granularity != Granularity::col) {
+    ++s_.groups;
+    s_.saturated_groups += sc.saturated;
+    s_.underflow_groups += sc.underflow;
+    s_.nan_groups += sc.nan;
+  }
+  double ue = 0;
+  std::uint64_t un = 0;
+  const ElementFormat& e = *f_.element;
+  for (std::size_t i = 0; i < g.n; ++i) {
+    const double x = g.x[i * g.stride];
+    if (!std::isfinite(x)) {
+      ++s_.nonfinite;
+      continue;
+    }
+    const double q = g.values[i];
+    if (std::isnan(q)) {
+      ++s_.nan_outputs;
+      continue;
+    }
+    const double err = q - x;
+    const double e2 = err * err;
+    ++un;
+    ue += e2;
+    s_.sum_x += x;
+    s_.sum_x2 += x * x;
+    const double ax = std::fabs(x), ae = std::fabs(err);
+    s_.max_abs_err = std::max(s_.max_abs_err, ae);
+    s_.max_abs_x = std::max(s_.max_abs_x, ax);
+    if (x != 0) {
+      ++s_.nonzero;
+      s_.sum_rel += ae / ax;
+      if (q == 0) ++s_.zeroed;
+    }
+    if (ax >= top_threshold_) {
+      ++s_.top_n;
+      s_.top_err2 += e2;
+    }
+    const Code c = g.codes[i];
+    if (!hist_.empty()) ++hist_[c];
+    if (ax > std::fabs(q)) {
+      if (affine_) {
+        if ((c == 0 && x < q) || (c == qmax_code_ && x > q)) ++s_.clipped;
+      } else if (std::fabs(e.decode(c)) == emax_) {
+        ++s_.clipped;
+      }
+    }
+  }
+  s_.n += un;
+  s_.sum_err2 += ue;
+  if (un) {
+    ++s_.units;
+    const double dn = static_cast<double>(un);
+    s_.u_e += ue;
+    s_.u_e2 += ue * ue;
+    s_.u_n += dn;
+    s_.u_n2 += dn * dn;
+    s_.u_en += ue * dn;
+  }
+}
+
+ErrorReport make_report(const ErrorSums& s, const std::vector<std::uint64_t>& hist) {
+  ErrorReport r;
+  r.n = s.n;
+  r.groups = s.groups;
+  r.saturated_groups = s.saturated_groups;
+  r.underflow_groups = s.underflow_groups;
+  r.nan_groups = s.nan_groups;
+  r.nonfinite = s.nonfinite;
+  if (s.n == 0) return r;
+  const double n = static_cast<double>(s.n);
+  r.mse = s.sum_err2 / n;
+  const double mean = s.sum_x / n;
+  const double var = s.sum_x2 / n - mean * mean;
+  r.mse_normalised = var > 0 ? r.mse / var : 0;
+  r.lossless = s.sum_err2 == 0;
+  const double power = s.sum_x2 / n;
+  if (!r.lossless && power > 0) r.sqnr_db = 10 * std::log10(power / r.mse);
+  // Ratio estimator over groups: var(e_b - mse * n_b) / (B * nbar^2).
+  if (s.units > 1) {
+    const double B = static_cast<double>(s.units);
+    const double ss = s.u_e2 - 2 * r.mse * s.u_en + r.mse * r.mse * s.u_n2;
+    const double var_u = std::max(ss, 0.0) / (B - 1);
+    const double nbar = s.u_n / B;
+    r.mse_stderr = std::sqrt(var_u / B) / nbar;
+    if (!r.lossless && power > 0) {
+      const double hi = r.mse + 1.96 * r.mse_stderr, lo = r.mse - 1.96 * r.mse_stderr;
+      r.sqnr_low = 10 * std::log10(power / hi);
+      if (lo > 0) r.sqnr_high = 10 * std::log10(power / lo);
+    }
+  }
+  r.max_abs_err = s.max_abs_err;
+  r.max_err_rel_absmax = s.max_abs_x > 0 ? s.max_abs_err / s.max_abs_x : 0;
+  r.mean_rel_err = s.nonzero ? s.sum_rel / static_cast<double>(s.nonzero) : 0;
+  r.clip_rate = static_cast<double>(s.clipped) / n;
+  r.zero_rate = s.nonzero ? static_cast<double>(s.zeroed) / static_cast<double>(s.nonzero) : 0;
+  r.top_n = s.top_n;
+  r.top_mse = s.top_n ? s.top_err2 / static_cast<double>(s.top_n) : 0;
+  std::uint64_t total = 0;
+  for (auto c : hist) total += c;
+  for (auto c : hist) {
+    if (!c) continue;
+    ++r.codes_used;
+    const double p = static_cast<double>(c) / static_cast<double>(total);
+    r.entropy_bits -= p * std::log2(p);
+  }
+  return r;
+}
+
+}  // namespace lobit

@@ -1,0 +1,165 @@
+#include "lobit/measure/score.hpp"
+
+#include <algorithm>
+#include <atomic>
+#include <bit>
+#include <cmath>
+#include <cstring>
+#include <fmt/format.h>
+#include <numeric>
+#include <thread>
+
+#include "lobit/error.hpp"
+
+namespace lobit {
+
+MemorySource::MemorySource(std::span<const float> data, std::uint64_t rows, std::uint64_t cols, std::string name)
+    : data_(data), rows_(rows), cols_(cols), name_(std::move(name)) {
+  if (data.size() != rows * cols)
+    throw usage_error(fmt::format("{} values for a {} x {} tensor", data.size(), rows, cols), name_);
+}
+
+void MemorySource::fill_rows(std::uint64_t row0, std::uint64_t nrows, float* out) const {
+  std::memcpy(out, data_.data() + row0 * cols_, nrows * cols_ * sizeof(float));
+}
+
+namespace {
+
+// Magnitude histogram on the top 16 bits of the float32 pattern of |x|
+// (bins 2^-7 wide in relative terms): the threshold of the largest fraction.
+struct MagnitudeHistogram {
+  std::vector<std::uint64_t> bins = std::vector<std::uint64_t>(1 << 15, 0);
+  void add(const float* x, std::size_t n) {
+    for (std::size_t i = 0; i < n; ++i) {
+      if (!std::isfinite(x[i])) continue;
+      const std::uint32_t b = std::bit_cast<std::uint32_t>(std::fabs(x[i]));
+      ++bins[b >> 16];
+    }
+  }
+  // The lower edge of the bin where the top `count` elements begin.
+  double threshold(std::uint64_t count) const {
+    std::uint64_t acc = 0;
+    for (std::size_t b = bins.size(); b-- > 0;) {
+      acc += bins[b];
+      if (acc >= count) return static_cast<double>(std::bit_cast<float>(static_cast<std::uint32_t>(b << 16)));
+    }
+    return 0;
+  }
+};
+
+}  // namespace
+
+ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& formats, const TensorSource& source,
+                  const ScoreOptions& o) {
+  if (formats.empty()) throw usage_error("no format to score", "score", "name at least one format");
+  const std::uint64_t rows = source.rows(), cols = source.cols();
+  if (rows == 0 || cols == 0) throw usage_error("the source is empty", source.name());
+  ScoreResult res;
+  res.elements = rows * cols;
+
+  // Chunks of whole rows; for blocks down columns, a multiple of every block size.
+  std::uint64_t chunk_rows = std::max<std::uint64_t>(1, o.chunk_elements / cols);
+  if (o.axis == 0) {
+    std::uint64_t m = 1;
+    for (const auto& f : formats)
+      if (f->granularity == Granularity::block) m = std::lcm(m, static_cast<std::uint64_t>(f->block));
+    chunk_rows = std::max<std::uint64_t>(m, chunk_rows / m * m);
+  }
+  chunk_rows = std::min(chunk_rows, rows);
+  const std::uint64_t nchunks = (rows + chunk_rows - 1) / chunk_rows;
+  res.chunks = nchunks;
+
+  // Pre-pass: the magnitude histogram and every plan that needs the data.
+  std::vector<PlanBuilder> builders;
+  builders.reserve(formats.size());
+  for (const auto& f : formats) builders.emplace_back(*f, rows, cols, o.axis);
+  MagnitudeHistogram mh;
+  std::uint64_t finite = 0;
+  {
+    std::vector<float> buf(chunk_rows * cols);
+    for (std::uint64_t c = 0; c < nchunks; ++c) {
+      const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
+      source.fill_rows(r0, nr, buf.data());
+      mh.add(buf.data(), nr * cols);
+      for (auto& b : builders)
+        if (b.needs_data()) b.add_rows(r0, nr, buf.data());
+    }
+    for (auto v : mh.bins) finite += v;
+  }
+  std::vector<TensorPlan> plans;
+  for (auto& b : builders) plans.push_back(b.finish());
+  const auto top_count = static_cast<std::uint64_t>(std::ceil(o.top_fraction * static_cast<double>(finite)));
+  res.top_threshold = mh.threshold(std::max<std::uint64_t>(top_count, 1));
+
+  // Main pass: chunks in parallel, float sums kept per chunk and merged in order.
+  int threads = o.threads > 0 ? o.threads : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
+  threads = static_cast<int>(std::min<std::uint64_t>(static_cast<std::uint64_t>(threads), nchunks));
+  res.threads = threads;
+  const std::size_t nf = formats.size();
+  std::vector<ErrorSums> per_chunk(nchunks * nf);
+  std::vector<std::vector<std::vector<std::uint64_t>>> hists(static_cast<std::size_t>(threads));
+  std::atomic<std::uint64_t> next{0};
+  std::vector<std::exception_ptr> errors(static_cast<std::size_t>(threads));
+  auto worker = [&](int t) {
+    try {
+      std::vector<ErrorAccumulator> acc;
+      for (std::size_t i = 0; i < nf; ++i) acc.emplace_back(*formats[i], res.top_threshold);
+      std::vector<float> buf(chunk_rows * cols);
+      for (;;) {
+        const std::uint64_t c = next.fetch_add(1);
+        if (c >= nchunks) break;
+        const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
+        source.fill_rows(r0, nr, buf.data());
+        for (std::size_t i = 0; i < nf; ++i) {
+          acc[i].sums() = ErrorSums{};
+          quantize_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add(g); });
+          per_chunk[c * nf + i] = acc[i].sums();
+        }
+      }
+      for (auto& a : acc) hists[static_cast<std::size_t>(t)].push_back(std::move(a.histogram()));
+    } catch (...) {
+      errors[static_cast<std::size_t>(t)] = std::current_exception();
+    }
+  };
+  std::vector<std::thread> pool;
+  for (int t = 1; t < threads; ++t) pool.emplace_back(worker, t);
+  worker(0);
+  for (auto& th : pool) th.join();
+  for (auto& e : errors)
+    if (e) std::rethrow_exception(e);
+
+  for (std::size_t i = 0; i < nf; ++i) {
+    const ScaledFormat& f = *formats[i];
+    ErrorSums total;
+    for (std::uint64_t c = 0; c < nchunks; ++c) total.merge(per_chunk[c * nf + i]);
+    // Tensor and column groups: counted once each from the plan.
+    if (f.granularity == Granularity::tensor || f.granularity == Granularity::col) {
+      const GroupQuantizer q(f, plans[i].tensor_scale);
+      auto count = [&](const GroupSummary& s) {
+        const GroupScale g = q.choose(s);
+        ++total.groups;
+        total.saturated_groups += g.saturated;
+        total.underflow_groups += g.underflow;
+        total.nan_groups += g.nan;
+      };
+      if (f.granularity == Granularity::tensor) count(plans[i].tensor_summary);
+      else for (const auto& s : plans[i].col_summary) count(s);
+    }
+    std::vector<std::uint64_t> hist;
+    for (auto& th : hists) {
+      if (th.size() <= i) continue;
+      if (hist.empty()) hist.assign(th[i].size(), 0);
+      for (std::size_t k = 0; k < th[i].size(); ++k) hist[k] += th[i][k];
+    }
+    ScoreRow row;
+    row.format = f.text;
+    row.bits_per_element = f.bits_per_element(rows, cols, o.axis);
+    row.scale_bit_share = (row.bits_per_element - f.element->bits()) / row.bits_per_element;
+    row.report = make_report(total, hist);
+    row.top_threshold = res.top_threshold;
+    res.rows.push_back(std::move(row));
+  }
+  return res;
+}
+
+}  // namespace lobit
