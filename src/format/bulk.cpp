@@ -2,6 +2,7 @@
 
 #include <array>
 #include <bit>
+#include <vector>
 #include <fmt/format.h>
 
 #include "lobit/error.hpp"
@@ -70,13 +71,26 @@ void encode(const ElementFormat& f, std::span<const std::uint16_t> in, HalfKind 
   }
 }
 
-void decode(const ElementFormat& f, std::span<const Code> in, std::span<double> out) {
+namespace {
+// Decoding through a table of every code (formats up to 16 bits); codes are
+// range-checked once per element against the table size.
+template <class T>
+void decode_loop(const ElementFormat& f, std::span<const Code> in, std::span<T> out) {
   check_sizes(in.size(), out.size());
-  for (std::size_t i = 0; i < in.size(); ++i) out[i] = f.decode(in[i]);
+  if (f.bits() > 16 || in.size() < (std::size_t{1} << f.bits())) {
+    for (std::size_t i = 0; i < in.size(); ++i) out[i] = static_cast<T>(f.decode(in[i]));
+    return;
+  }
+  std::vector<T> table(std::size_t{1} << f.bits());
+  for (std::size_t c = 0; c < table.size(); ++c) table[c] = static_cast<T>(f.decode(c));
+  for (std::size_t i = 0; i < in.size(); ++i) {
+    if (in[i] >= table.size()) f.decode(in[i]);  // throws the out-of-range error
+    out[i] = table[in[i]];
+  }
 }
-void decode(const ElementFormat& f, std::span<const Code> in, std::span<float> out) {
-  check_sizes(in.size(), out.size());
-  for (std::size_t i = 0; i < in.size(); ++i) out[i] = static_cast<float>(f.decode(in[i]));
-}
+}  // namespace
+
+void decode(const ElementFormat& f, std::span<const Code> in, std::span<double> out) { decode_loop(f, in, out); }
+void decode(const ElementFormat& f, std::span<const Code> in, std::span<float> out) { decode_loop(f, in, out); }
 
 }  // namespace lobit

@@ -97,6 +97,7 @@ std::vector<Preset> load_embedded() {
   auto rank = [](const Preset& p) {
     const std::string head = p.spec.substr(0, p.spec.find('+'));
     if (!p.values.empty() || head == "codebook") return 3;
+    if (p.spec.find('@') != std::string::npos) return 4;
     return head == "float" ? 0 : head == "pow2" ? 1 : 2;
   };
   std::sort(out.begin(), out.end(), [&](const Preset& a, const Preset& b) {
@@ -350,6 +351,9 @@ std::shared_ptr<const ElementFormat> from_preset(const Preset& p, const Keys& ke
     if (p.spec.rfind("codebook+bits=", 0) == 0) bits = std::stoi(p.spec.substr(14));
     return build_codebook(p.values, bits, keys);
   }
+  if (p.spec.find('@') != std::string::npos)
+    throw usage_error(fmt::format("'{}' is a block-scaled format ({})", p.name, p.spec), "format spec",
+                      "use it where block-scaled formats are accepted (lobit score), or name its element alone");
   // A preset's spec is itself a spec: parse it, then apply the extra keys.
   std::string_view s = p.spec;
   const std::size_t plus = s.find('+');

@@ -84,6 +84,17 @@ int parse_positive(std::string_view text, const std::string& what, const std::st
 
 std::shared_ptr<const ScaledFormat> parse_scaled(std::string_view spec) {
   const std::string where = fmt::format("format '{}'", spec);
+  {
+    // A block-scaled preset, optionally with more options after a comma.
+    const std::size_t c = spec.find(',');
+    const std::string name(spec.substr(0, c));
+    if (const Preset* p = find_preset(name); p && p->scaled()) {
+      std::string expanded = p->spec;
+      if (c != std::string_view::npos) expanded += std::string(spec.substr(c));
+      auto f = parse_scaled(expanded);
+      return f;
+    }
+  }
   auto out = std::make_shared<ScaledFormat>();
   // Options come after the first top-level comma; the nested `scales=` value may
   // itself hold '@' and ':', so split the head off first.

@@ -224,3 +224,19 @@ TEST_CASE("scores do not depend on the thread count") {
   CHECK(a.rows[0].report.mse == doctest::Approx(se / x.size()).epsilon(1e-12));
   CHECK(a.rows[0].report.groups == 64 * 16);
 }
+
+TEST_CASE("block-scaled presets expand to their compositions") {
+  for (const auto& p : presets()) {
+    if (!p.scaled()) continue;
+    INFO("preset ", p.name);
+    auto f = parse_scaled(p.name);
+    CHECK(f->text == parse_scaled(p.spec)->text);
+    CHECK_FALSE(p.source.empty());
+  }
+  CHECK(parse_scaled("mxfp4")->nominal_bits_per_element() == 4.25);
+  CHECK(parse_scaled("mxfp8-e4m3")->nominal_bits_per_element() == 8.25);
+  CHECK(parse_scaled("shared-exp16-sub2-m7")->nominal_bits_per_element() == 9.0);  // Rouhani et al. 2023: 9 bits
+  CHECK(parse_scaled("shared-exp16-sub2-m4")->nominal_bits_per_element() == 6.0);
+  CHECK(parse_scaled("shared-exp16-sub2-m2")->nominal_bits_per_element() == 4.0);
+  CHECK(parse_scaled("mxfp4,ragged=refuse")->allow_ragged == false);
+}

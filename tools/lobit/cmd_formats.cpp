@@ -3,6 +3,7 @@
 
 #include "common.hpp"
 #include "lobit/format/spec.hpp"
+#include "lobit/scale/scaled_format.hpp"
 
 namespace lobit::cli {
 
@@ -14,9 +15,19 @@ void add_formats_command(CLI::App& app) {
     if (*json) {
       nlohmann::json arr = nlohmann::json::array();
       for (const auto& p : presets()) {
-        auto f = parse_element(p.name);
-        arr.push_back({{"name", p.name}, {"aliases", p.aliases}, {"bits", f->bits()}, {"summary", p.summary},
-                       {"source", p.source}, {"format", f->spec()}});
+        nlohmann::json e = {{"name", p.name}, {"aliases", p.aliases}, {"summary", p.summary}, {"source", p.source}};
+        if (p.scaled()) {
+          auto f = parse_scaled(p.name);
+          e["kind"] = "scaled";
+          e["bits"] = f->nominal_bits_per_element();
+          e["format"] = f->text;
+        } else {
+          auto f = parse_element(p.name);
+          e["kind"] = "element";
+          e["bits"] = f->bits();
+          e["format"] = f->spec();
+        }
+        arr.push_back(std::move(e));
       }
       print_json(arr);
       return;

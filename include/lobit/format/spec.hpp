@@ -25,6 +25,7 @@ struct Preset {
   std::string spec;     // parameter form, or empty for a codebook given by values
   std::vector<double> values;
   std::string file;     // the TOML file it came from
+  bool scaled() const { return spec.find('@') != std::string::npos; }  // a block-scaled composition
 };
 
 // The presets shipped in formats/ (embedded in the library at build time).
