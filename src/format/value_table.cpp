@@ -124,6 +124,22 @@ ValueTable::ValueTable(const ElementFormat& f) : spec_(f.spec()) {
   }
 }
 
+NearestTable::NearestTable(const ElementFormat& f) {
+  const ValueTable t(f);
+  for (const auto& th : t.thresholds()) {
+    if (!th.exact_in_double()) usable_ = false;
+    thr_.push_back(th.nearest);
+    tie_up_.push_back(th.tie_to_upper ? 1 : 0);
+  }
+  codes_ = t.codes();
+  if (thr_.empty()) usable_ = false;
+  const std::size_t zi = t.index_of_value(0.0);
+  if (zi < t.values().size() && t.values()[zi] == 0) zero_code_ = t.codes()[zi];
+  if (f.has_negative_zero()) neg_zero_ = f.encode(-0.0);
+  values_by_code_.resize(std::size_t{1} << f.bits());
+  for (std::size_t c = 0; c < values_by_code_.size(); ++c) values_by_code_[c] = f.decode(c);
+}
+
 std::size_t ValueTable::index_of_value(double v) const {
   auto it = std::lower_bound(values_.begin(), values_.end(), v);
   return static_cast<std::size_t>(it - values_.begin());

@@ -2,6 +2,8 @@
 
 #include <cmath>
 
+#include "lobit/format/value_table.hpp"
+
 namespace lobit {
 
 void ErrorSums::merge(const ErrorSums& o) {
@@ -51,6 +53,7 @@ void ErrorAccumulator::add(const GroupView& g) {
   double ue = 0;
   std::uint64_t un = 0;
   const ElementFormat& e = *f_.element;
+  const NearestTable* table = f_.element_table.get();
   for (std::size_t i = 0; i < g.n; ++i) {
     const double x = g.x[i * g.stride];
     if (!std::isfinite(x)) {
@@ -85,7 +88,7 @@ void ErrorAccumulator::add(const GroupView& g) {
     if (ax > std::fabs(q)) {
       if (affine_) {
         if ((c == 0 && x < q) || (c == qmax_code_ && x > q)) ++s_.clipped;
-      } else if (std::fabs(e.decode(c)) == emax_) {
+      } else if (std::fabs(table ? table->decode(c) : e.decode(c)) == emax_) {
         ++s_.clipped;
       }
     }

@@ -43,18 +43,9 @@ GroupSummary summarize(const float* x, std::size_t n, std::size_t stride) {
 }
 
 GroupQuantizer::GroupQuantizer(const ScaledFormat& f, double tensor_scale) : f_(f), tensor_scale_(tensor_scale) {
-  if (f.zero) {
-    auto* in = dynamic_cast<const Integer*>(f.element.get());
-    if (!in) throw usage_error("a zero point needs an integer element", f.text);
-    IntegerParams up = in->params();
-    up.sign = false;
-    up.symmetric = false;
-    unsigned_element_ = std::make_shared<Integer>(up);
-    qmax_ = std::ldexp(static_cast<double>((std::int64_t{1} << up.bits) - 1), -up.frac_bits);
-    emax_value_ = qmax_;
-  } else {
-    emax_value_ = lobit::element_max(*f.element);
-  }
+  unsigned_element_ = f.code_element;
+  emax_value_ = f.element_max_value;
+  qmax_ = f.zero ? emax_value_ : 0;
   emax_exp_ = std::ilogb(emax_value_);
   if (f.scale && f.scale->family() == "pow2") pow2_range(*f.scale, scale_lo_exp_, scale_hi_exp_);
 }
@@ -176,7 +167,7 @@ void GroupQuantizer::sub_offsets(const float* x, std::size_t n, std::size_t stri
 
 double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t stride, const GroupScale& g, Code* codes,
                                 double* values) const {
-  const ElementFormat& e = f_.zero ? *unsigned_element_ : *f_.element;
+  const ElementFormat& e = *f_.code_element;
   if (g.nan) {
     for (std::size_t i = 0; i < n; ++i) {
       if (codes) codes[i] = e.nan_code().value_or(0);
@@ -195,21 +186,42 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
     }
     return err;
   }
-  std::vector<int> offs;
+  thread_local std::vector<int> offs;
   if (f_.sub_block) sub_offsets(x, n, stride, g, offs);
+  const NearestTable* table = f_.element_table.get();
+  const double zero = g.zero;
+  if (table && !f_.sub_block) {
+    // The hot path: one scale for the group, the table encoder.
+    const double s = g.scale;
+    if (f_.zero) {
+      for (std::size_t i = 0; i < n; ++i) {
+        const double v = x[i * stride];
+        const Code c = table->encode(v / s + zero);
+        const double q = s * (table->decode(c) - zero);
+        if (codes) codes[i] = c;
+        if (values) values[i] = q;
+        err += (q - v) * (q - v);
+      }
+    } else {
+      for (std::size_t i = 0; i < n; ++i) {
+        const double v = x[i * stride];
+        const Code c = table->encode(v / s);
+        const double q = s * table->decode(c);
+        if (codes) codes[i] = c;
+        if (values) values[i] = q;
+        err += (q - v) * (q - v);
+      }
+    }
+    return err;
+  }
   for (std::size_t i = 0; i < n; ++i) {
     const double v = x[i * stride];
     double s = g.scale;
     if (f_.sub_block) s = std::ldexp(s, -offs[i / static_cast<std::size_t>(f_.sub_block)]);
-    Code c;
-    double q;
-    if (f_.zero) {
-      c = e.encode(v / s + g.zero, Rounding::nearest_even, Overflow::saturate);
-      q = s * (e.decode(c) - g.zero);
-    } else {
-      c = e.encode(v / s, Rounding::nearest_even, Overflow::saturate);
-      q = s * e.decode(c);
-    }
+    const double y = f_.zero ? v / s + zero : v / s;  // no "+ 0": it would turn -0 into +0
+    const Code c = table ? table->encode(y) : e.encode(y, Rounding::nearest_even, Overflow::saturate);
+    const double d = table ? table->decode(c) : e.decode(c);
+    const double q = f_.zero ? s * (d - zero) : s * d;
     if (codes) codes[i] = c;
     if (values) values[i] = q;
     err += (q - v) * (q - v);

@@ -184,6 +184,8 @@ std::shared_ptr<const ScaledFormat> parse_scaled(std::string_view spec) {
   if (out->zero) {
     if (out->element->family() != "int")
       throw usage_error("a zero point needs an integer element", where, "write e.g. uint4@128:fp16,zero=uint4");
+    if (dynamic_cast<const Integer*>(out->element.get()) == nullptr)
+      throw usage_error("a zero point needs an integer element", where);
     if (out->rule == ScaleRule::mx)
       throw usage_error("a zero point with rule=mx is not supported", where, "use a float scale format");
   }
@@ -215,6 +217,21 @@ std::shared_ptr<const ScaledFormat> parse_scaled(std::string_view spec) {
       t += o;
     }
   out->text = t;
+
+  if (out->zero) {
+    IntegerParams up = dynamic_cast<const Integer&>(*out->element).params();
+    up.sign = false;
+    up.symmetric = false;
+    out->code_element = std::make_shared<Integer>(up);
+    out->element_max_value = std::ldexp(static_cast<double>((std::int64_t{1} << up.bits) - 1), -up.frac_bits);
+  } else {
+    out->code_element = out->element;
+    out->element_max_value = element_max(*out->element);
+  }
+  if (out->code_element->bits() <= 16) {
+    auto table = std::make_shared<NearestTable>(*out->code_element);
+    if (table->usable()) out->element_table = table;
+  }
   return out;
 }
 

@@ -72,3 +72,27 @@ TEST_CASE("tie sides follow the code-parity rule") {
     CHECK(f->decode(f->encode(th.nearest)) == f->decode(winner));  // -0 and +0 compare equal
   }
 }
+
+TEST_CASE("the table encoder of the block-quantization hot loop equals each format's encode") {
+  std::mt19937_64 rng(9);
+  for (const auto& p : presets()) {
+    if (p.scaled()) continue;
+    auto f = fmt(p.name.c_str());
+    if (f->bits() > 16) continue;
+    const NearestTable nt(*f);
+    INFO("preset ", p.name);
+    if (!nt.usable()) continue;
+    const ValueTable t(*f);
+    std::vector<double> xs = {0.0, -0.0, 1e300, -1e300};
+    for (const auto& th : t.thresholds())
+      xs.insert(xs.end(), {th.nearest, std::nextafter(th.nearest, -INFINITY), std::nextafter(th.nearest, INFINITY)});
+    for (double v : t.values()) xs.push_back(v);
+    std::uniform_real_distribution<double> u(t.values().front() * 1.2, t.values().back() * 1.2);
+    for (int i = 0; i < 2000; ++i) xs.push_back(u(rng));
+    for (double x : xs) {
+      const Code want = f->encode(x, Rounding::nearest_even, Overflow::saturate);
+      CHECK(nt.encode(x) == want);
+      CHECK(lobit::test::same_value(nt.decode(want), f->decode(want)));
+    }
+  }
+}

@@ -4,6 +4,8 @@
 // the side a tie goes to, and an encoder that works from them alone. Families
 // without an arithmetic encoder (power-of-two, codebooks) encode with it; the
 // arithmetic encoders are tested against it.
+#include <cmath>
+#include <optional>
 #include <string>
 #include <vector>
 
@@ -33,6 +35,40 @@ struct Threshold {
 // cannot hold it), as decimal text with every digit.
 std::string exact_midpoint_decimal(double a, double b);
 Threshold midpoint(double a, double b);
+
+// Nearest-even, saturating encode and decode by table, for the hot loops of
+// block quantization: the same codes as the format's own encode (tested), with
+// a branch-light binary search over the thresholds. Built only where every
+// threshold is exact in binary64 (usable() says so).
+class NearestTable {
+ public:
+  explicit NearestTable(const ElementFormat& f);  // f.bits() <= 16
+  bool usable() const { return usable_; }
+  Code encode(double y) const {
+    // i = number of thresholds below y, plus one where y sits on a threshold whose tie goes up.
+    std::size_t lo = 0, n = thr_.size();
+    const double* t = thr_.data();
+    while (n > 1) {
+      const std::size_t half = n / 2;
+      lo = (t[lo + half - 1] < y) ? lo + half : lo;
+      n -= half;
+    }
+    std::size_t i = lo + (n == 1 && t[lo] < y ? 1 : 0);
+    if (i < thr_.size() && t[i] == y && tie_up_[i]) ++i;
+    const Code c = codes_[i];
+    return (c == zero_code_ && std::signbit(y) && neg_zero_) ? *neg_zero_ : c;
+  }
+  double decode(Code c) const { return values_by_code_[c]; }
+
+ private:
+  std::vector<double> thr_;
+  std::vector<unsigned char> tie_up_;
+  std::vector<Code> codes_;
+  std::vector<double> values_by_code_;
+  Code zero_code_ = ~Code{0};
+  std::optional<Code> neg_zero_;
+  bool usable_ = true;
+};
 
 class ValueTable {
  public:

@@ -42,6 +42,13 @@ struct ScaledFormat {
   int sub_block = 0, sub_bits = 0;                 // shared micro-exponents
   bool allow_ragged = true;
 
+  // Derived at parse time: the format codes are stored in (for affine groups
+  // the unsigned integer of the element's width), its largest magnitude reachable
+  // with either sign, and a table encoder where one is exact.
+  std::shared_ptr<const ElementFormat> code_element;
+  double element_max_value = 0;
+  std::shared_ptr<const class NearestTable> element_table;  // null: use code_element->encode
+
   bool affine() const { return zero != nullptr; }
   // Bits per element, every scale, zero point and meta-scale included, for a
   // rows x cols tensor whose reduction axis is `axis` (1: along a row).
