@@ -34,10 +34,7 @@ void ErrorSums::merge(const ErrorSums& o) {
 }
 
 ErrorAccumulator::ErrorAccumulator(const ScaledFormat& f, double top_threshold)
-    : f_(f), top_threshold_(top_threshold), affine_(f.zero != nullptr) {
-  const GroupQuantizer q(f);
-  emax_ = q.element_max();
-  if (affine_) qmax_code_ = (Code{1} << f.element->bits()) - 1;
+    : f_(f), top_threshold_(top_threshold) {
   if (f.element->bits() <= 16) hist_.assign(std::size_t{1} << f.element->bits(), 0);
 }
 
@@ -52,8 +49,6 @@ void ErrorAccumulator::add(const GroupView& g) {
   }
   double ue = 0;
   std::uint64_t un = 0;
-  const ElementFormat& e = *f_.element;
-  const NearestTable* table = f_.element_table.get();
   for (std::size_t i = 0; i < g.n; ++i) {
     const double x = g.x[i * g.stride];
     if (!std::isfinite(x)) {
@@ -83,16 +78,9 @@ void ErrorAccumulator::add(const GroupView& g) {
       ++s_.top_n;
       s_.top_err2 += e2;
     }
-    const Code c = g.codes[i];
-    if (!hist_.empty()) ++hist_[c];
-    if (ax > std::fabs(q)) {
-      if (affine_) {
-        if ((c == 0 && x < q) || (c == qmax_code_ && x > q)) ++s_.clipped;
-      } else if (std::fabs(table ? table->decode(c) : e.decode(c)) == emax_) {
-        ++s_.clipped;
-      }
-    }
+    if (!hist_.empty()) ++hist_[g.codes[i]];
   }
+  if (!sc.nan) s_.clipped += g.clipped;
   s_.n += un;
   s_.sum_err2 += ue;
   if (un) {

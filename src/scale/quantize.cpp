@@ -48,6 +48,11 @@ GroupQuantizer::GroupQuantizer(const ScaledFormat& f, double tensor_scale) : f_(
   qmax_ = f.zero ? emax_value_ : 0;
   emax_exp_ = std::ilogb(emax_value_);
   if (f.scale && f.scale->family() == "pow2") pow2_range(*f.scale, scale_lo_exp_, scale_hi_exp_);
+  // Half a gap beyond each end of the element's values.
+  const ValueTable t(*f.code_element);
+  const auto& v = t.values();
+  clip_hi_ = v.back() + (v.back() - v[v.size() - 2]) / 2;
+  clip_lo_ = v.front() - (v[1] - v.front()) / 2;
 }
 
 GroupScale GroupQuantizer::from_target(double target, const GroupSummary&, Rounding r) const {
@@ -166,7 +171,9 @@ void GroupQuantizer::sub_offsets(const float* x, std::size_t n, std::size_t stri
 }
 
 double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t stride, const GroupScale& g, Code* codes,
-                                double* values) const {
+                                double* values, std::size_t* clipped) const {
+  std::size_t clip = 0;
+  const double chi = clip_hi_, clo = clip_lo_;
   const ElementFormat& e = *f_.code_element;
   if (g.nan) {
     for (std::size_t i = 0; i < n; ++i) {
@@ -196,7 +203,9 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
     if (f_.zero) {
       for (std::size_t i = 0; i < n; ++i) {
         const double v = x[i * stride];
-        const Code c = table->encode(v / s + zero);
+        const double y = v / s + zero;
+        clip += (y > chi) | (y < clo);
+        const Code c = table->encode(y);
         const double q = s * (table->decode(c) - zero);
         if (codes) codes[i] = c;
         if (values) values[i] = q;
@@ -205,13 +214,16 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
     } else {
       for (std::size_t i = 0; i < n; ++i) {
         const double v = x[i * stride];
-        const Code c = table->encode(v / s);
+        const double y = v / s;
+        clip += (y > chi) | (y < clo);
+        const Code c = table->encode(y);
         const double q = s * table->decode(c);
         if (codes) codes[i] = c;
         if (values) values[i] = q;
         err += (q - v) * (q - v);
       }
     }
+    if (clipped) *clipped += clip;
     return err;
   }
   for (std::size_t i = 0; i < n; ++i) {
@@ -219,6 +231,7 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
     double s = g.scale;
     if (f_.sub_block) s = std::ldexp(s, -offs[i / static_cast<std::size_t>(f_.sub_block)]);
     const double y = f_.zero ? v / s + zero : v / s;  // no "+ 0": it would turn -0 into +0
+    clip += (y > chi) | (y < clo);
     const Code c = table ? table->encode(y) : e.encode(y, Rounding::nearest_even, Overflow::saturate);
     const double d = table ? table->decode(c) : e.decode(c);
     const double q = f_.zero ? s * (d - zero) : s * d;
@@ -226,6 +239,7 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
     if (values) values[i] = q;
     err += (q - v) * (q - v);
   }
+  if (clipped) *clipped += clip;
   return err;
 }
 
@@ -339,8 +353,9 @@ void quantize_rows_impl(const ScaledFormat& f, const TensorPlan& plan, std::uint
       const GroupSummary s = known ? *known : summarize(x, n, stride);
       g = q.choose(s, x, n, stride);
     }
-    q.quantize(x, n, stride, g, codes.data(), values.data());
-    fn(ctx, GroupView{index, x, n, stride, codes.data(), values.data(), &g});
+    std::size_t clipped = 0;
+    q.quantize(x, n, stride, g, codes.data(), values.data(), &clipped);
+    fn(ctx, GroupView{index, x, n, stride, codes.data(), values.data(), &g, clipped});
   };
   switch (f.granularity) {
     case Granularity::fixed:

@@ -35,5 +35,6 @@ void add_inspect_command(CLI::App& app);
 void add_encode_command(CLI::App& app);
 void add_decode_command(CLI::App& app);
 void add_compare_command(CLI::App& app);
+void add_score_command(CLI::App& app);
 
 }  // namespace lobit::cli

@@ -13,7 +13,7 @@ namespace lobit {
 struct ErrorSums {
   std::uint64_t n = 0;          // finite inputs scored
   std::uint64_t nonzero = 0;    // of them, non-zero
-  std::uint64_t clipped = 0;    // beyond the largest element magnitude at their scale
+  std::uint64_t clipped = 0;    // past the element's end values by more than half the end gap
   std::uint64_t zeroed = 0;     // non-zero inputs that quantized to 0
   std::uint64_t nonfinite = 0;  // NaN/inf inputs (kept out of every sum)
   std::uint64_t nan_outputs = 0;  // finite inputs in groups that decode to NaN (kept out)
@@ -42,9 +42,6 @@ class ErrorAccumulator {
  private:
   const ScaledFormat& f_;
   double top_threshold_;
-  double emax_;
-  bool affine_;
-  Code qmax_code_ = 0;
   ErrorSums s_;
   std::vector<std::uint64_t> hist_;  // element code usage (formats up to 16 bits)
 };

@@ -54,9 +54,12 @@ class GroupQuantizer {
   GroupScale with_scale(double decoded_block_scale, const GroupSummary& s) const;
 
   // Quantizes n strided elements with the chosen scale: codes and dequantized
-  // values (either output may be null). Returns the sum of squared errors.
+  // values (either output may be null). Returns the sum of squared errors and
+  // adds to *clipped the inputs that lie beyond the element's largest (or
+  // smallest) value by more than half the gap next to it: those that saturation,
+  // not rounding, brought back.
   double quantize(const float* x, std::size_t n, std::size_t stride, const GroupScale& g, Code* codes,
-                  double* values) const;
+                  double* values, std::size_t* clipped = nullptr) const;
 
   // For micro-exponent formats: the per-sub-block scale offsets of a block.
   void sub_offsets(const float* x, std::size_t n, std::size_t stride, const GroupScale& g,
@@ -74,6 +77,7 @@ class GroupQuantizer {
   int scale_lo_exp_ = 0, scale_hi_exp_ = 0;  // pow2 scale exponent range
   std::shared_ptr<const ElementFormat> unsigned_element_;  // affine
   double qmax_ = 0;         // affine: largest unsigned code value
+  double clip_lo_ = 0, clip_hi_ = 0;  // element-domain bounds past which an input counts as clipped
 };
 
 // What quantizing a tensor needs beyond one chunk of rows: the per-tensor
@@ -116,6 +120,7 @@ struct GroupView {
   const Code* codes;            // n codes
   const double* values;         // n dequantized values
   const GroupScale* scale;
+  std::size_t clipped;          // inputs of the group that clipped (see GroupQuantizer::quantize)
 };
 
 // Quantizes rows row0 .. row0 + nrows - 1 (row-major data), calling visit(GroupView)
