@@ -16,6 +16,7 @@
 #include "lobit/format/integer.hpp"
 #include "lobit/format/minifloat.hpp"
 #include "lobit/format/power_of_two.hpp"
+#include "lobit/design/lloyd_max.hpp"
 
 namespace lobit {
 
@@ -212,6 +213,22 @@ std::optional<int> small_number(std::string_view s) {
 }
 
 // "eXmY" -> (X, Y)
+std::shared_ptr<const ElementFormat> build_lloyd_max(const Keys& keys) {
+  int levels = 16;
+  Density d = Density::gauss;
+  for (auto& [k, v] : keys) {
+    if (k == "levels") levels = parse_int(v, k);
+    else if (k == "density") {
+      auto pd = parse_density(v);
+      if (!pd) throw usage_error(fmt::format("density={} is not known", v), "format spec", "use gauss, laplace or uniform");
+      d = *pd;
+    } else unknown_key(k, "lloyd-max", "levels, density");
+  }
+  if (levels < 2 || levels > 4096)
+    throw usage_error(fmt::format("levels={} is out of range", levels), "format spec", "use 2 to 4096 levels");
+  return lloyd_max_codebook(d, levels);
+}
+
 std::optional<std::pair<int, int>> exmy(std::string_view head) {
   if (head.size() < 4 || head[0] != 'e') return std::nullopt;
   const std::size_t m = head.find('m');
@@ -324,6 +341,7 @@ std::shared_ptr<const ElementFormat> parse_with_keys(std::string_view head, cons
   if (h == "pow2") return build_pow2(PowerOfTwoParams{}, false, keys);
   if (h == "codebook") return build_codebook({}, 0, keys);
   if (h == "normal-quantile") return build_normal_quantile(4, std::nullopt, keys);
+  if (h == "lloyd-max") return build_lloyd_max(keys);
   if (auto em = exmy(h)) {
     MinifloatParams mp;
     mp.exp_bits = em->first;
@@ -341,7 +359,7 @@ std::shared_ptr<const ElementFormat> parse_with_keys(std::string_view head, cons
   }
   auto near = nearest_presets(h);
   std::string hint = "did you mean " + fmt::format("{}", fmt::join(near, ", ")) +
-                     "? `lobit formats` lists the presets; families: float, int, pow2, codebook, normal-quantile";
+                     "? `lobit formats` lists the presets; families: float, int, pow2, codebook, normal-quantile, lloyd-max";
   throw usage_error(fmt::format("unknown format '{}'", h), "format spec", hint);
 }
 

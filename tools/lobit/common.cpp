@@ -4,6 +4,7 @@
 #include <charconv>
 #include <cmath>
 #include <cstdio>
+#include <cstring>
 #include <fmt/format.h>
 
 #include "lobit/error.hpp"
@@ -89,6 +90,19 @@ Code parse_code(const std::string& text, const ElementFormat& f, const std::stri
                       fmt::format("{} has {} bits: codes 0 to {}", f.spec(), f.bits(),
                                   code_hex(f.code_count_minus_one(), f.bits())));
   return c;
+}
+
+void write_file_atomic(const std::string& path, const std::string& content) {
+  const std::string tmp = path + ".lobit-partial";
+  std::FILE* f = std::fopen(tmp.c_str(), "wb");
+  if (!f) throw usage_error(fmt::format("cannot write {}: {}", tmp, std::strerror(errno)), path, "check the directory and its permissions");
+  const bool ok = std::fwrite(content.data(), 1, content.size(), f) == content.size();
+  const bool closed = std::fclose(f) == 0;
+  if (!ok || !closed || std::rename(tmp.c_str(), path.c_str()) != 0) {
+    const std::string why = std::strerror(errno);
+    std::remove(tmp.c_str());
+    throw usage_error(fmt::format("cannot write {}: {}", path, why), path, "check the disk and the path");
+  }
 }
 
 void print_json(const nlohmann::json& j) {

@@ -27,6 +27,9 @@ std::string format_title(const std::string& given, const ElementFormat& f);
 double parse_number(const std::string& text, const std::string& where);
 Code parse_code(const std::string& text, const ElementFormat& f, const std::string& where);
 
+// Writes a whole file or nothing: a temporary file beside it, renamed into place.
+void write_file_atomic(const std::string& path, const std::string& content);
+
 // Writes JSON to stdout with 17 significant digits for every double.
 void print_json(const nlohmann::json& j);
 
@@ -36,5 +39,6 @@ void add_encode_command(CLI::App& app);
 void add_decode_command(CLI::App& app);
 void add_compare_command(CLI::App& app);
 void add_score_command(CLI::App& app);
+void add_design_command(CLI::App& app);
 
 }  // namespace lobit::cli

@@ -21,6 +21,7 @@ int main(int argc, char** argv) {
   lobit::cli::add_decode_command(app);
   lobit::cli::add_compare_command(app);
   lobit::cli::add_score_command(app);
+  lobit::cli::add_design_command(app);
   try {
     app.parse(argc, argv);
   } catch (const CLI::CallForHelp& e) {

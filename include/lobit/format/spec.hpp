@@ -3,7 +3,7 @@
 //
 //   spec    := head ('+' key '=' value)*
 //   head    := preset name | family | path to a .toml preset file
-//   family  := float | int | pow2 | codebook | normal-quantile
+//   family  := float | int | pow2 | codebook | normal-quantile | lloyd-max
 //
 // `eXmY` that is not a preset is an IEEE 754-style float of X exponent and Y
 // mantissa bits; `intN` / `uintN` is an N-bit integer for any N in 2..16. Keys
