@@ -94,6 +94,101 @@ void ErrorAccumulator::add(const GroupView& g) {
   }
 }
 
+void ErrorAccumulator::add_fused(const GroupView& g) {
+  const GroupScale& sc = *g.scale;
+  if (f_.granularity != Granularity::tensor && f_.granularity != Granularity::col) {
+    ++s_.groups;
+    s_.saturated_groups += sc.saturated;
+    s_.underflow_groups += sc.underflow;
+    s_.nan_groups += sc.nan;
+  }
+  if (sc.nan) {
+    // As in add(): NaN/inf inputs counted, the group's finite inputs left out.
+    for (std::size_t i = 0; i < g.n; ++i) {
+      if (std::isfinite(g.x[i * g.stride])) ++s_.nan_outputs;
+      else ++s_.nonfinite;
+    }
+    return;
+  }
+  const NearestTable& t = *f_.element_table;
+  const double s = sc.scale, z = sc.zero;
+  const bool affine = f_.zero != nullptr, zero_scale = !(s > 0);
+  const double chi = g.quantizer->clip_high(), clo = g.quantizer->clip_low();
+  const Code zcode = affine ? sc.zero_code : t.encode(0.0);
+  double ue = 0, sx = s_.sum_x, sx2 = s_.sum_x2, srel = s_.sum_rel, mae = s_.max_abs_err, max_x = s_.max_abs_x;
+  double top_e2 = s_.top_err2;
+  std::uint64_t nonzero = 0, zeroed = 0, top_n = 0, clip = 0;
+  const double top = top_threshold_;
+  std::uint64_t* hist = hist_.empty() ? nullptr : hist_.data();
+  // Fixed-scale formats have no group to mark NaN: check each input.
+  const bool check = f_.granularity == Granularity::fixed;
+  std::uint64_t skipped = 0;
+  for (std::size_t i = 0; i < g.n; ++i) {
+    const double x = g.x[i * g.stride];
+    if (check && !std::isfinite(x)) {
+      ++skipped;
+      continue;
+    }
+    Code c;
+    double q;
+    if (zero_scale) {
+      c = zcode;
+      q = 0.0;
+    } else if (affine) {
+      const double y = x / s + z;
+      clip += (y > chi) | (y < clo);
+      c = t.encode(y);
+      q = s * (t.decode(c) - z);
+    } else {
+      const double y = x / s;
+      clip += (y > chi) | (y < clo);
+      c = t.encode(y);
+      q = s * t.decode(c);
+    }
+    const double err = q - x;
+    const double e2 = err * err;
+    ue += e2;
+    sx += x;
+    sx2 += x * x;
+    const double ax = std::fabs(x), ae = std::fabs(err);
+    mae = std::max(mae, ae);
+    max_x = std::max(max_x, ax);
+    if (x != 0) {
+      ++nonzero;
+      srel += ae / ax;
+      zeroed += q == 0;
+    }
+    if (ax >= top) {
+      ++top_n;
+      top_e2 += e2;
+    }
+    if (hist) ++hist[c];
+  }
+  s_.sum_x = sx;
+  s_.sum_x2 = sx2;
+  s_.sum_rel = srel;
+  s_.max_abs_err = mae;
+  s_.max_abs_x = max_x;
+  s_.top_err2 = top_e2;
+  s_.nonzero += nonzero;
+  s_.zeroed += zeroed;
+  s_.top_n += top_n;
+  s_.clipped += clip;
+  s_.nonfinite += skipped;
+  const std::uint64_t un = g.n - skipped;
+  s_.n += un;
+  s_.sum_err2 += ue;
+  if (un) {
+    ++s_.units;
+    const double dn = static_cast<double>(un);
+    s_.u_e += ue;
+    s_.u_e2 += ue * ue;
+    s_.u_n += dn;
+    s_.u_n2 += dn * dn;
+    s_.u_en += ue * dn;
+  }
+}
+
 ErrorReport make_report(const ErrorSums& s, const std::vector<std::uint64_t>& hist) {
   ErrorReport r;
   r.n = s.n;

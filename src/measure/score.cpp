@@ -112,7 +112,10 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
         source.fill_rows(r0, nr, buf.data());
         for (std::size_t i = 0; i < nf; ++i) {
           acc[i].sums() = ErrorSums{};
-          quantize_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add(g); });
+          if (acc[i].fused_ok() && !o.unfused)
+            scan_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add_fused(g); });
+          else
+            quantize_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add(g); });
           per_chunk[c * nf + i] = acc[i].sums();
         }
       }

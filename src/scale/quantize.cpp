@@ -197,6 +197,31 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
   if (f_.sub_block) sub_offsets(x, n, stride, g, offs);
   const NearestTable* table = f_.element_table.get();
   const double zero = g.zero;
+  if (f_.granularity == Granularity::fixed) {
+    // No group to mark NaN: a NaN or infinity takes the element's NaN code
+    // (code 0 where it has none) and the value NaN, and adds no error.
+    bool any = false;
+    for (std::size_t i = 0; i < n && !any; ++i) any = !std::isfinite(x[i * stride]);
+    if (any) {
+      for (std::size_t i = 0; i < n; ++i) {
+        const double v = x[i * stride];
+        if (std::isfinite(v)) {
+          const Code c = e.encode(v / g.scale, Rounding::nearest_even, Overflow::saturate);
+          const double q = g.scale * e.decode(c);
+          if (codes) codes[i] = c;
+          if (values) values[i] = q;
+          err += (q - v) * (q - v);
+          const double y = v / g.scale;
+          clip += (y > chi) | (y < clo);
+        } else {
+          if (codes) codes[i] = e.nan_code().value_or(0);
+          if (values) values[i] = kNaN;
+        }
+      }
+      if (clipped) *clipped += clip;
+      return err;
+    }
+  }
   if (table && !f_.sub_block) {
     // The hot path: one scale for the group, the table encoder.
     const double s = g.scale;
@@ -337,14 +362,16 @@ TensorPlan PlanBuilder::finish() {
 namespace detail {
 
 void quantize_rows_impl(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
-                        const float* data, void* ctx, GroupFn fn) {
+                        const float* data, void* ctx, GroupFn fn, bool raw) {
   const GroupQuantizer q(f, plan.tensor_scale);
   const std::uint64_t cols = plan.cols;
   std::vector<Code> codes;
   std::vector<double> values;
   auto run = [&](std::uint64_t index, const float* x, std::size_t n, std::size_t stride, const GroupSummary* known) {
-    codes.resize(n);
-    values.resize(n);
+    if (!raw) {
+      codes.resize(n);
+      values.resize(n);
+    }
     GroupScale g;
     if (f.scales) {
       const GroupSummary s = summarize(x, n, stride);
@@ -353,9 +380,13 @@ void quantize_rows_impl(const ScaledFormat& f, const TensorPlan& plan, std::uint
       const GroupSummary s = known ? *known : summarize(x, n, stride);
       g = q.choose(s, x, n, stride);
     }
+    if (raw) {
+      fn(ctx, GroupView{index, x, n, stride, nullptr, nullptr, &g, 0, &q});
+      return;
+    }
     std::size_t clipped = 0;
     q.quantize(x, n, stride, g, codes.data(), values.data(), &clipped);
-    fn(ctx, GroupView{index, x, n, stride, codes.data(), values.data(), &g, clipped});
+    fn(ctx, GroupView{index, x, n, stride, codes.data(), values.data(), &g, clipped, &q});
   };
   switch (f.granularity) {
     case Granularity::fixed:

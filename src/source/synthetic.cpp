@@ -1,6 +1,7 @@
 #include "lobit/source/synthetic.hpp"
 
 #include <algorithm>
+#include <bit>
 #include <boost/math/distributions/laplace.hpp>
 #include <boost/math/distributions/logistic.hpp>
 #include <boost/math/distributions/normal.hpp>
@@ -153,12 +154,12 @@ inline __attribute__((always_inline)) void outlier_loop(const KernelArgs& a, std
   const std::uint64_t s0 = a.key + (first + 1) * rng::golden_gamma;
   const std::uint64_t s1 = a.key2 + (first + 1) * rng::golden_gamma;
   const std::int64_t threshold = a.threshold;
-  const double plus = a.size, minus = -a.size;
+  const std::uint64_t size_bits = std::bit_cast<std::uint64_t>(a.size);
   for (std::size_t j = 0; j < n; ++j) {
     const double z = rng::gauss(rng::mix64(s0 + j * rng::golden_gamma));
     const std::uint64_t v = rng::mix64(s1 + j * rng::golden_gamma);
-    const double o = (v & 1) ? minus : plus;  // sign from bit 0, choice from bits 11..63
-    out[j] = static_cast<T>(static_cast<std::int64_t>(v >> 11) < threshold ? o : z);
+    const double o = std::bit_cast<double>(size_bits | (v << 63));  // sign from bit 0, choice from bits 11..63
+    out[j] = static_cast<T>(rng::detail::select(static_cast<std::int64_t>(v >> 11) < threshold, o, z));
   }
 }
 
@@ -426,7 +427,7 @@ template <class T>
 void SyntheticSource::fill_impl(std::uint64_t first, std::span<T> out) const {
   const std::uint64_t n_total = size();
   if (first > n_total || out.size() > n_total - first)
-    throw usage_error(fmt::format("elements {}..{} are outside the {} elements of '{}'", first,
+    throw usage_error(fmt::format("elements [{}, {}) are outside the {} elements of '{}'", first,
                                   first + out.size(), n_total, canonical(spec_)),
                       "synthetic source", "fill within size()");
   if (out.empty()) return;

@@ -240,3 +240,40 @@ TEST_CASE("block-scaled presets expand to their compositions") {
   CHECK(parse_scaled("shared-exp16-sub2-m2")->nominal_bits_per_element() == 4.0);
   CHECK(parse_scaled("mxfp4,ragged=refuse")->allow_ragged == false);
 }
+
+TEST_CASE("the scorer's fused loop gives the same sums as quantize + accumulate") {
+  std::vector<float> x(32 * 256);
+  std::mt19937 rng(5);
+  std::student_t_distribution<float> td(3.0f);
+  for (auto& v : x) v = td(rng);
+  x[17] = NAN;  // one NaN group
+  x[100] = 0.0f;
+  const MemorySource src(x, 32, 256);
+  std::vector<std::shared_ptr<const ScaledFormat>> fs;
+  for (const char* s : {"e2m1@32:e8m0", "int4@32:fp16", "uint4@64:fp16,zero=uint4", "nf4@64:fp16", "e4m3@row:fp32",
+                        "int8@tensor:fp32", "e2m1@16:e4m3,tensor-scale=fp32", "e3m2,scale=0.25", "int4@col:bf16",
+                        "nf4@64:fp32,scales=e4m3@256:fp32"})
+    fs.push_back(parse_scaled(s));
+  ScoreOptions a, b;
+  a.chunk_elements = b.chunk_elements = 2048;
+  b.unfused = true;
+  const ScoreResult ra = score(fs, src, a), rb = score(fs, src, b);
+  for (std::size_t i = 0; i < fs.size(); ++i) {
+    INFO(fs[i]->text);
+    const ErrorReport &p = ra.rows[i].report, &q = rb.rows[i].report;
+    CHECK(p.mse == q.mse);
+    CHECK(p.mse_stderr == q.mse_stderr);
+    CHECK(p.max_abs_err == q.max_abs_err);
+    CHECK(p.mean_rel_err == q.mean_rel_err);
+    CHECK(p.clip_rate == q.clip_rate);
+    CHECK(p.zero_rate == q.zero_rate);
+    CHECK(p.top_mse == q.top_mse);
+    CHECK(p.entropy_bits == q.entropy_bits);
+    CHECK(p.nan_groups == q.nan_groups);
+    CHECK(p.nonfinite == q.nonfinite);
+    CHECK(p.n == q.n);
+  }
+  CHECK(ra.rows[0].report.nan_groups == 1);
+  CHECK(ra.rows[0].report.nonfinite == 1);
+  CHECK(ra.rows[0].report.n == x.size() - 32);  // the NaN's group of 32 is left out
+}

@@ -35,6 +35,11 @@ class ErrorAccumulator {
   ErrorAccumulator(const ScaledFormat& f, double top_threshold);
 
   void add(const GroupView& g);
+  // The fused loop: quantizes and accumulates a group handed out by scan_rows
+  // (same sums as quantize + add, in the same order). Needs a table encoder
+  // and no micro-exponents: fused_ok() says so.
+  void add_fused(const GroupView& g);
+  bool fused_ok() const { return f_.element_table && !f_.sub_block; }
   ErrorSums& sums() { return s_; }
   const ErrorSums& sums() const { return s_; }
   std::vector<std::uint64_t>& histogram() { return hist_; }

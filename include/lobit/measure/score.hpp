@@ -46,6 +46,7 @@ struct ScoreOptions {
   int axis = 1;                            // reduction axis: 1 along rows, 0 down columns
   std::uint64_t chunk_elements = 1 << 18;  // rows per chunk ~ this many elements (whole rows)
   double top_fraction = 1e-4;              // "largest 0.01% of magnitudes"
+  bool unfused = false;                    // tests: take the general per-group path everywhere
 };
 
 struct ScoreRow {

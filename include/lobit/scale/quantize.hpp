@@ -66,6 +66,8 @@ class GroupQuantizer {
                    std::vector<int>& out) const;
 
   double element_max() const { return emax_value_; }
+  double clip_low() const { return clip_lo_; }    // element-domain bounds of clipping
+  double clip_high() const { return clip_hi_; }
 
  private:
   GroupScale from_target(double target, const GroupSummary& s, Rounding r) const;
@@ -121,6 +123,7 @@ struct GroupView {
   const double* values;         // n dequantized values
   const GroupScale* scale;
   std::size_t clipped;          // inputs of the group that clipped (see GroupQuantizer::quantize)
+  const class GroupQuantizer* quantizer;
 };
 
 // Quantizes rows row0 .. row0 + nrows - 1 (row-major data), calling visit(GroupView)
@@ -153,15 +156,26 @@ double two_level_tensor_scale(const ScaledFormat& f, double tensor_amax);
 namespace detail {
 using GroupFn = void (*)(void* ctx, const GroupView& g);
 void quantize_rows_impl(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
-                        const float* data, void* ctx, GroupFn fn);
+                        const float* data, void* ctx, GroupFn fn, bool raw);
 }  // namespace detail
 
 template <class Visit>
 void quantize_rows(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
                    const float* data, Visit&& visit) {
-  detail::quantize_rows_impl(f, plan, row0, nrows, data, &visit, [](void* ctx, const GroupView& g) {
-    (*static_cast<std::remove_reference_t<Visit>*>(ctx))(g);
-  });
+  detail::quantize_rows_impl(
+      f, plan, row0, nrows, data, &visit,
+      [](void* ctx, const GroupView& g) { (*static_cast<std::remove_reference_t<Visit>*>(ctx))(g); }, false);
+}
+
+// Like quantize_rows, but the visitor gets each group's inputs and chosen scale
+// only (codes and values null, clipped 0) and runs the element loop itself
+// through view.quantizer (the scorer's fused loop).
+template <class Visit>
+void scan_rows(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+               const float* data, Visit&& visit) {
+  detail::quantize_rows_impl(
+      f, plan, row0, nrows, data, &visit,
+      [](void* ctx, const GroupView& g) { (*static_cast<std::remove_reference_t<Visit>*>(ctx))(g); }, true);
 }
 
 }  // namespace lobit

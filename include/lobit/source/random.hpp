@@ -92,6 +92,11 @@ inline constexpr double inv_ln2 = 1.44269504088896340736;
 inline constexpr double ln2_hi = 0x1.62e42feep-1;
 inline constexpr double ln2_lo = 0x1.a39ef35793c76p-33;
 
+// c ? a : b, both computed. The kernels' translation unit is compiled with
+// -fno-trapping-math so that GCC turns this into a vector blend rather than a
+// branch (see src/source_sources.cmake).
+inline double select(bool c, double a, double b) noexcept { return c ? a : b; }
+
 constexpr double inv_factorial(int n) {
   double f = 1.0;
   for (int i = 2; i <= n; ++i) f *= i;
@@ -178,10 +183,11 @@ inline double expm1_small(double r) noexcept {
 
 // e^y - 1 for y >= 0 (+inf beyond binary64). y = k ln2 + r with |r| <= ln2/2
 // (k by the 1.5 * 2^52 rounding trick), then 2^k (1 + expm1 r) - 1 =
-// 2^k expm1(r) + (2^k - 1): exact scalings and one rounded sum. 2^k is applied
-// as two factors so that k up to 2020 stays inside the exponent range.
+// 2^k expm1(r) + (2^k - 1): exact scalings and one rounded sum (for k > 1000,
+// where 2^k alone may overflow, 2^k (1 + expm1 r)). 2^k is applied as two
+// factors so that k up to 2020 stays inside the exponent range.
 inline double expm1_nonneg(double y) noexcept {
-  y = y < 1400.0 ? y : 1400.0;  // e^1400 is +inf in binary64 anyway
+  y = select(y < 1400.0, y, 1400.0);  // e^1400 is +inf in binary64 anyway
   const double shifted = y * inv_ln2 + 0x1.8p52;
   const double kd = shifted - 0x1.8p52;
   const std::uint64_t k = std::bit_cast<std::uint64_t>(shifted) & ((std::uint64_t{1} << 51) - 1);
@@ -190,7 +196,9 @@ inline double expm1_nonneg(double y) noexcept {
   const std::uint64_t k1 = k >> 1, k2 = k - k1;
   const double s1 = std::bit_cast<double>((k1 + 1023) << 52);
   const double s2 = std::bit_cast<double>((k2 + 1023) << 52);
-  return s1 * (s2 * em) + (s1 * s2 - 1.0);
+  const double near = s1 * (s2 * em) + (s1 * s2 - 1.0);  // k <= 1000: 2^k is finite
+  const double far = s1 * (s2 * (1.0 + em));              // the -1 is below half an ulp; overflows to +inf
+  return select(k > 1000, far, near);
 }
 
 // e^y for |y| <= 700 (clamped there), by the same reduction.
@@ -213,7 +221,7 @@ inline double exp_bounded(double y) noexcept {
 inline double log1p_nonneg(double q) noexcept {
   const double u = 1.0 + q;
   const double g = log_pos(u) * (q / (u - 1.0));
-  return u == 1.0 ? q : g;
+  return select(u == 1.0, q, g);
 }
 
 inline double with_sign_of_bit63(double magnitude, std::uint64_t w) noexcept {
@@ -254,7 +262,7 @@ inline double logistic(std::uint64_t w) noexcept {
 inline double uniform(std::uint64_t w) noexcept {
   constexpr double sqrt3 = 1.73205080756887729353;
   const double v = std::bit_cast<double>(detail::one_bits | (w >> 12));  // 1 + m 2^-52
-  return (2.0 * v - (3.0 - 0x1p-52)) * sqrt3;                            // exact before the scaling
+  return (2.0 * (v - 1.5) + 0x1p-52) * sqrt3;                            // exact before the scaling
 }
 
 // Uniform in (0, 1): (m + 1/2) 2^-52, m = the low 52 bits.
