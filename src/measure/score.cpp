@@ -98,7 +98,7 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
   const std::size_t nf = formats.size();
   std::vector<ErrorSums> per_chunk(nchunks * nf);
   std::vector<std::vector<std::vector<std::uint64_t>>> hists(static_cast<std::size_t>(threads));
-  std::atomic<std::uint64_t> next{0};
+  std::atomic<std::uint64_t> next{0}, done{0};
   std::vector<std::exception_ptr> errors(static_cast<std::size_t>(threads));
   auto worker = [&](int t) {
     try {
@@ -118,6 +118,8 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
             quantize_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add(g); });
           per_chunk[c * nf + i] = acc[i].sums();
         }
+        const std::uint64_t d = done.fetch_add(1) + 1;
+        if (t == 0 && o.progress) o.progress(d, nchunks);
       }
       for (auto& a : acc) hists[static_cast<std::size_t>(t)].push_back(std::move(a.histogram()));
     } catch (...) {
@@ -160,6 +162,7 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
     row.scale_bit_share = (row.bits_per_element - f.element->bits()) / row.bits_per_element;
     row.report = make_report(total, hist);
     row.top_threshold = res.top_threshold;
+    row.ragged = plans[i].ragged;
     res.rows.push_back(std::move(row));
   }
   return res;

@@ -68,7 +68,14 @@ void add_score_command(CLI::App& app) {
     ScoreOptions so;
     so.threads = o->threads;
     so.axis = o->axis;
+    const bool show = isatty(2) && src->rows() * src->cols() >= (std::uint64_t{1} << 24);
+    if (show)
+      so.progress = [](std::uint64_t d, std::uint64_t n) {
+        std::fprintf(stderr, "\rscoring: %3d%% (%llu of %llu chunks)", static_cast<int>(100 * d / n),
+                     static_cast<unsigned long long>(d), static_cast<unsigned long long>(n));
+      };
     const ScoreResult res = score(fs, *src, so);
+    if (show) std::fprintf(stderr, "\r%60s\r", "");
 
     std::vector<Row> rows;
     const auto density = src->density();
@@ -119,6 +126,7 @@ void add_score_command(CLI::App& app) {
             {"groups", {{"count", e.groups}, {"scale_saturated", e.saturated_groups},
                         {"scale_underflow", e.underflow_groups}, {"nan", e.nan_groups}}},
             {"nonfinite_inputs", e.nonfinite},
+            {"ragged_last_block", r.s.ragged},
             {"mse_exact", opt(r.mse_exact)},
             {"sqnr_exact_db", opt(r.sqnr_exact)}};
         arr.push_back(std::move(j));
@@ -162,8 +170,8 @@ void add_score_command(CLI::App& app) {
       return;
     }
     fmt::print("# source {} ({}), {} samples, seed {}\n", src->name(), shape, res.elements, o->seed);
-    fmt::print("# elements rounded nearest-even and saturating; reduction axis {}; a short last block is scored as it is\n",
-               o->axis);
+    fmt::print("# elements rounded nearest-even and saturating; reduction axis {} ({}); 95% intervals over groups\n",
+               o->axis, o->axis == 1 ? "blocks run along rows" : "blocks run down columns");
     std::size_t w = 6;
     for (const auto& r : rows) w = std::max(w, r.name.size());
     fmt::print("{:<{}}  {:>9}  {:>11}  {:<27}  {:>10}  {:>7}  {:>7}  {:>6}  {:>7}{}\n", "format", w, "bits/elem", "MSE",
@@ -174,11 +182,14 @@ void add_score_command(CLI::App& app) {
                  r.s.bits_per_element, e.mse, sqnr_text(e), e.max_abs_err, pct(e.clip_rate), pct(e.zero_rate),
                  e.codes_used, e.entropy_bits,
                  o->exact ? fmt::format("  {:>11}", r.mse_exact ? fmt::format("{:.5g}", *r.mse_exact) : "-") : "");
+      if (r.s.ragged)
+        fmt::print("{:<{}}  note: the last block along axis {} is shorter than the block size (scored as it is)\n", "", w,
+                   o->axis);
       if (e.saturated_groups || e.underflow_groups || e.nan_groups || e.nonfinite)
         fmt::print("{:<{}}  note: {} of {} groups had a saturated scale, {} an underflowing scale, {} NaN; {} non-finite inputs left out\n",
                    "", w, e.saturated_groups, e.groups, e.underflow_groups, e.nan_groups, e.nonfinite);
     }
-    fmt::print("# lobit {} (git {}), {} threads, {} chunks\n", version(), git_revision(), res.threads, res.chunks);
+    fmt::print("# lobit {} (git {}); threads: {}; chunks: {}\n", version(), git_revision(), res.threads, res.chunks);
     fmt::print("# {}\n", caution);
   });
 }

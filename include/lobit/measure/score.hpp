@@ -2,6 +2,7 @@
 // Scoring: many scaled formats over one source in one streaming pass (plus the
 // pre-pass that per-tensor scales, column scales, double quantization and the
 // top-magnitude threshold need). Results do not depend on the thread count.
+#include <functional>
 #include <memory>
 #include <optional>
 #include <string>
@@ -47,6 +48,8 @@ struct ScoreOptions {
   std::uint64_t chunk_elements = 1 << 18;  // rows per chunk ~ this many elements (whole rows)
   double top_fraction = 1e-4;              // "largest 0.01% of magnitudes"
   bool unfused = false;                    // tests: take the general per-group path everywhere
+  // Called now and then from one thread with (chunks done, chunks in all), for a progress line.
+  std::function<void(std::uint64_t, std::uint64_t)> progress;
 };
 
 struct ScoreRow {
@@ -55,6 +58,7 @@ struct ScoreRow {
   double scale_bit_share = 0;    // share of the bits spent on scales and zero points
   ErrorReport report;
   double top_threshold = 0;      // |x| at or above this counts as a top magnitude
+  bool ragged = false;           // the last block along the axis is shorter than the block size
 };
 
 struct ScoreResult {
