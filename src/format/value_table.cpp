@@ -133,9 +133,17 @@ NearestTable::NearestTable(const ElementFormat& f) {
   }
   codes_ = t.codes();
   if (thr_.empty()) usable_ = false;
+  // Pad to 2^k - 1 thresholds (+inf: never below y) so the search has a fixed depth;
+  // one more +inf entry keeps t[i] readable for i = thresholds.
+  std::size_t padded = 1;
+  while (padded - 1 < thr_.size()) padded <<= 1;
+  first_step_ = padded / 2;
+  thr_.resize(padded, INFINITY);
+  tie_up_.resize(padded, 0);
+  codes_.resize(padded, codes_.back());
   const std::size_t zi = t.index_of_value(0.0);
   if (zi < t.values().size() && t.values()[zi] == 0) zero_code_ = t.codes()[zi];
-  if (f.has_negative_zero()) neg_zero_ = f.encode(-0.0);
+  if (f.has_negative_zero()) has_neg_zero_ = true, neg_zero_code_ = f.encode(-0.0);
   values_by_code_.resize(std::size_t{1} << f.bits());
   for (std::size_t c = 0; c < values_by_code_.size(); ++c) values_by_code_[c] = f.decode(c);
 }

@@ -1,7 +1,9 @@
 // The streaming scorer against the closed form, on the library's own
 // synthetic sources: Monte Carlo agrees with the exact MSE within 4.5 standard
 // errors for every scalar preset up to 16 bits (a 95% interval would fail
-// somewhere by chance across dozens of checks).
+// somewhere by chance across dozens of checks). The exact values are the
+// project's own closed forms, themselves checked against published tables in
+// tests/design and tests/measure.
 #include <doctest/doctest.h>
 
 #include <cmath>
@@ -45,8 +47,12 @@ TEST_CASE("Monte Carlo MSE agrees with the closed form for every scalar preset u
       if (p.scaled()) continue;
       auto e = parse_element(p.name);
       if (e->bits() > 16) continue;
-      // Put each format's range over the data: scale so that the element max sits at 4 sigma.
-      const double scale = 4.0 / element_max(*e);
+      // Put each format's range over the data, with the element max far enough out
+      // (8 sigma; 20 for the Laplace tail) that rare clipping does not dominate the
+      // error: the group-level standard error is reliable only for errors that many
+      // groups share.
+      const double reach = std::string(density) == "laplace" ? 20.0 : 8.0;
+      const double scale = reach / element_max(*e);
       fs.push_back(parse_scaled(p.name + ",scale=" + fmt::format("{}", scale)));
       ps.push_back(&p);
     }
@@ -60,7 +66,6 @@ TEST_CASE("Monte Carlo MSE agrees with the closed form for every scalar preset u
       const ExactError x = exact_mse(*fs[i]->element, *parse_density(density), fs[i]->fixed_scale);
       REQUIRE(e.mse_stderr > 0);
       CHECK(std::fabs(e.mse - x.mse) <= 4.5 * e.mse_stderr);
-      MESSAGE(what, " mc ", e.mse, " exact ", x.mse, " se ", e.mse_stderr);
     }
   }
 }

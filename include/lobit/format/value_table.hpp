@@ -45,18 +45,15 @@ class NearestTable {
   explicit NearestTable(const ElementFormat& f);  // f.bits() <= 16
   bool usable() const { return usable_; }
   Code encode(double y) const {
-    // i = number of thresholds below y, plus one where y sits on a threshold whose tie goes up.
-    std::size_t lo = 0, n = thr_.size();
+    // i = number of thresholds below y (a fixed-depth search over a table padded
+    // to 2^k - 1 entries with +inf), plus one where y sits on a threshold whose
+    // tie goes up.
     const double* t = thr_.data();
-    while (n > 1) {
-      const std::size_t half = n / 2;
-      lo = (t[lo + half - 1] < y) ? lo + half : lo;
-      n -= half;
-    }
-    std::size_t i = lo + (n == 1 && t[lo] < y ? 1 : 0);
-    if (i < thr_.size() && t[i] == y && tie_up_[i]) ++i;
+    std::size_t i = 0;
+    for (std::size_t step = first_step_; step; step >>= 1) i += (t[i + step - 1] < y) ? step : 0;
+    i += (t[i] == y) & tie_up_[i];
     const Code c = codes_[i];
-    return (c == zero_code_ && std::signbit(y) && neg_zero_) ? *neg_zero_ : c;
+    return (c == zero_code_ && std::signbit(y) && has_neg_zero_) ? neg_zero_code_ : c;
   }
   double decode(Code c) const { return values_by_code_[c]; }
 
@@ -66,7 +63,9 @@ class NearestTable {
   std::vector<Code> codes_;
   std::vector<double> values_by_code_;
   Code zero_code_ = ~Code{0};
-  std::optional<Code> neg_zero_;
+  bool has_neg_zero_ = false;
+  Code neg_zero_code_ = 0;
+  std::size_t first_step_ = 0;  // half the padded table size
   bool usable_ = true;
 };
 
