@@ -571,47 +571,54 @@ OptimalScale optimize_scale(const LevelSet& L, Density d, const std::string& whe
     throw usage_error("the MSE has no minimum at a finite positive scale", where,
                       "it keeps falling toward scale 0 or infinity; a format whose values are all of one "
                       "sign and away from zero cannot be fitted to a zero-mean density");
-  // The three lowest local minima of the grid.
+  // Every local minimum of the grid within 5% of the best grid value (at most
+  // 64, the lowest first): floating-point formats have one per factor of 2 in
+  // the scale, equal to ~1e-6, and the grid alone cannot rank them.
   std::vector<int> minima;
   for (int k = 1; k + 1 < K; ++k)
-    if (f[k] <= f[k - 1] && f[k] <= f[k + 1] && (f[k] < f[k - 1] || f[k] < f[k + 1])) minima.push_back(k);
+    if (f[k] <= f[k - 1] && f[k] <= f[k + 1] && (f[k] < f[k - 1] || f[k] < f[k + 1]) && f[k] <= f[best] * 1.05)
+      minima.push_back(k);
   if (std::find(minima.begin(), minima.end(), best) == minima.end()) minima.push_back(best);
   std::sort(minima.begin(), minima.end(), [&](int a, int b) { return f[a] < f[b]; });
-  if (minima.size() > 3) minima.resize(3);
+  if (minima.size() > 64) minima.resize(64);
 
   auto fmse = [&](double uu) { return fast_eval(L, d, std::exp(uu)).mse; };
   auto fderiv = [&](double s) { return fast_eval(L, d, s).deriv; };
   std::vector<Candidate> cands;
   for (int k : minima) {
-    // Golden section on log(scale) over the grid bracket.
-    double a = u[k - 1], b = u[k + 1];
-    const double gr = 0.6180339887498949;
-    double x1 = b - gr * (b - a), x2 = a + gr * (b - a);
-    double f1 = fmse(x1), f2 = fmse(x2);
-    while (b - a > 1e-8) {
-      if (f1 <= f2) {
-        b = x2, x2 = x1, f2 = f1;
-        x1 = b - gr * (b - a);
-        f1 = fmse(x1);
-      } else {
-        a = x1, x1 = x2, f1 = f2;
-        x2 = a + gr * (b - a);
-        f2 = fmse(x2);
-      }
-    }
-    double s = std::exp(0.5 * (a + b));
-    // A root of the derivative near it, where the derivative brackets one.
     const double glo = std::exp(u[k - 1]), ghi = std::exp(u[k + 1]);
-    for (double rel = 1e-6; rel < 1; rel *= 8) {
-      const double sl = std::max(glo, s * (1 - rel)), sh = std::min(ghi, s * (1 + rel));
-      const double dl = fderiv(sl), dh = fderiv(sh);
-      if (dl <= 0 && dh >= 0) {
-        s = illinois(fderiv, sl, dl, sh, dh, 1e-12, 100);
-        break;
-      }
-      if (sl == glo && sh == ghi) break;
+    // The root of the (fast) derivative in the grid bracket, where it brackets
+    // one and that root is no worse than the grid point; golden section on
+    // log(scale) otherwise.
+    double s = std::exp(u[k]);
+    double fs = f[k];
+    const double dl = fderiv(glo), dh = fderiv(ghi);
+    bool found = false;
+    if (dl <= 0 && dh >= 0) {
+      const double r = illinois(fderiv, glo, dl, ghi, dh, 1e-12, 100);
+      const double fr = fast_eval(L, d, r).mse;
+      if (fr <= f[k]) s = r, fs = fr, found = true;
     }
-    cands.push_back({s, fast_eval(L, d, s).mse, glo, ghi});
+    if (!found) {
+      double a = u[k - 1], b = u[k + 1];
+      const double gr = 0.6180339887498949;
+      double x1 = b - gr * (b - a), x2 = a + gr * (b - a);
+      double f1 = fmse(x1), f2 = fmse(x2);
+      while (b - a > 1e-9) {
+        if (f1 <= f2) {
+          b = x2, x2 = x1, f2 = f1;
+          x1 = b - gr * (b - a);
+          f1 = fmse(x1);
+        } else {
+          a = x1, x1 = x2, f1 = f2;
+          x2 = a + gr * (b - a);
+          f2 = fmse(x2);
+        }
+      }
+      s = std::exp(0.5 * (a + b));
+      fs = fast_eval(L, d, s).mse;
+    }
+    cands.push_back({s, fs, glo, ghi});
   }
   // The candidate with the lowest fast MSE. Candidates within the fast
   // evaluation's accuracy (~1e-13 relative) of each other are equal minima

@@ -114,6 +114,9 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
   const double s = sc.scale, z = sc.zero;
   const bool affine = f_.zero != nullptr, zero_scale = !(s > 0);
   const double chi = g.quantizer->clip_high(), clo = g.quantizer->clip_low();
+  int sexp = 0;
+  const bool pow2 = s > 0 && std::isfinite(s) && std::frexp(s, &sexp) == 0.5 && sexp > -1000 && sexp < 1000;
+  const double inv = pow2 ? 1.0 / s : 0.0;
   const Code zcode = affine ? sc.zero_code : t.encode(0.0);
   double ue = 0, sx = s_.sum_x, sx2 = s_.sum_x2, srel = s_.sum_rel, mae = s_.max_abs_err, max_x = s_.max_abs_x;
   double top_e2 = s_.top_err2;
@@ -140,7 +143,9 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
       c = t.encode(y);
       q = s * (t.decode(c) - z);
     } else {
-      const double y = x / s;
+      // x / s equals x * (1 / s) exactly when s is a power of two (both are the
+      // correctly rounded value of the same quotient).
+      const double y = pow2 ? x * inv : x / s;
       clip += (y > chi) | (y < clo);
       c = t.encode(y);
       q = s * t.decode(c);

@@ -75,25 +75,53 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
   for (const auto& f : formats) builders.emplace_back(*f, rows, cols, o.axis);
   MagnitudeHistogram mh;
   std::uint64_t finite = 0;
-  {
-    std::vector<float> buf(chunk_rows * cols);
+  int threads = o.threads > 0 ? o.threads : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
+  threads = static_cast<int>(std::min<std::uint64_t>(static_cast<std::uint64_t>(threads), nchunks));
+  auto rows_of = [&](std::uint64_t r0, std::uint64_t nr, std::vector<float>& buf) -> const float* {
+    if (const float* p = source.view_rows(r0)) return p;
+    buf.resize(nr * cols);
+    source.fill_rows(r0, nr, buf.data());
+    return buf.data();
+  };
+  bool any_plan = false;
+  for (auto& b : builders) any_plan |= b.needs_data();
+  if (any_plan) {
+    // Plans see the rows in order: one thread.
+    std::vector<float> buf;
     for (std::uint64_t c = 0; c < nchunks; ++c) {
       const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
-      source.fill_rows(r0, nr, buf.data());
-      mh.add(buf.data(), nr * cols);
+      const float* d = rows_of(r0, nr, buf);
+      mh.add(d, nr * cols);
       for (auto& b : builders)
-        if (b.needs_data()) b.add_rows(r0, nr, buf.data());
+        if (b.needs_data()) b.add_rows(r0, nr, d);
     }
-    for (auto v : mh.bins) finite += v;
+  } else {
+    // Only the magnitude histogram: integer counts, merged in any order.
+    std::vector<MagnitudeHistogram> part(static_cast<std::size_t>(threads));
+    std::atomic<std::uint64_t> next_pre{0};
+    auto pre = [&](int t) {
+      std::vector<float> buf;
+      for (;;) {
+        const std::uint64_t c = next_pre.fetch_add(1);
+        if (c >= nchunks) break;
+        const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
+        part[static_cast<std::size_t>(t)].add(rows_of(r0, nr, buf), nr * cols);
+      }
+    };
+    std::vector<std::thread> pool;
+    for (int t = 1; t < threads; ++t) pool.emplace_back(pre, t);
+    pre(0);
+    for (auto& th : pool) th.join();
+    for (auto& p : part)
+      for (std::size_t b = 0; b < p.bins.size(); ++b) mh.bins[b] += p.bins[b];
   }
+  for (auto v : mh.bins) finite += v;
   std::vector<TensorPlan> plans;
   for (auto& b : builders) plans.push_back(b.finish());
   const auto top_count = static_cast<std::uint64_t>(std::ceil(o.top_fraction * static_cast<double>(finite)));
   res.top_threshold = mh.threshold(std::max<std::uint64_t>(top_count, 1));
 
   // Main pass: chunks in parallel, float sums kept per chunk and merged in order.
-  int threads = o.threads > 0 ? o.threads : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
-  threads = static_cast<int>(std::min<std::uint64_t>(static_cast<std::uint64_t>(threads), nchunks));
   res.threads = threads;
   const std::size_t nf = formats.size();
   std::vector<ErrorSums> per_chunk(nchunks * nf);
@@ -104,18 +132,18 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
     try {
       std::vector<ErrorAccumulator> acc;
       for (std::size_t i = 0; i < nf; ++i) acc.emplace_back(*formats[i], res.top_threshold);
-      std::vector<float> buf(chunk_rows * cols);
+      std::vector<float> buf;
       for (;;) {
         const std::uint64_t c = next.fetch_add(1);
         if (c >= nchunks) break;
         const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
-        source.fill_rows(r0, nr, buf.data());
+        const float* data = rows_of(r0, nr, buf);
         for (std::size_t i = 0; i < nf; ++i) {
           acc[i].sums() = ErrorSums{};
           if (acc[i].fused_ok() && !o.unfused)
-            scan_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add_fused(g); });
+            scan_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add_fused(g); });
           else
-            quantize_rows(*formats[i], plans[i], r0, nr, buf.data(), [&](const GroupView& g) { acc[i].add(g); });
+            quantize_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add(g); });
           per_chunk[c * nf + i] = acc[i].sums();
         }
         const std::uint64_t d = done.fetch_add(1) + 1;

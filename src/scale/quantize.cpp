@@ -237,9 +237,12 @@ double GroupQuantizer::quantize(const float* x, std::size_t n, std::size_t strid
         err += (q - v) * (q - v);
       }
     } else {
+      int sexp = 0;
+      const bool pow2 = std::isfinite(s) && std::frexp(s, &sexp) == 0.5 && sexp > -1000 && sexp < 1000;
+      const double inv = pow2 ? 1.0 / s : 0.0;  // exact: x * inv is then x / s to the bit
       for (std::size_t i = 0; i < n; ++i) {
         const double v = x[i * stride];
-        const double y = v / s;
+        const double y = pow2 ? v * inv : v / s;
         clip += (y > chi) | (y < clo);
         const Code c = table->encode(y);
         const double q = s * table->decode(c);

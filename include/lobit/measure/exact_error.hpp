@@ -41,7 +41,9 @@ struct ExactError {
 };
 
 // Throws lobit::Error (usage) for a format wider than 16 bits, and for a scale
-// that is not finite and positive.
+// that is not finite and positive. Cost: ~10-100 us per value of the format
+// for the Gaussian (50-digit erfc), less for the others; 1-7 s for a 16-bit
+// format.
 ExactError exact_mse(const ElementFormat& f, Density d, double scale);
 
 // The same for the nearest-value saturating quantizer on scale * levels, where
@@ -55,16 +57,19 @@ struct OptimalScale {
 };
 
 // The scale minimising exact_mse. MSE(scale) is smooth but not unimodal for
-// coarse formats (and nearly periodic in log2(scale) for floating-point ones),
-// so a log grid of 400 points over 8 decades around (density reach / amax) is
-// scanned with a fast binary64 quadrature of the same integrals, the three
-// best local minima are refined, and the winner is polished on the exact
-// derivative dMSE/dscale (50-digit) to a relative precision of ~1e-12 in the
-// scale. Where several scales attain the minimum to within rounding (floats),
-// one of them is returned. Cost: a few exact evaluations, each ~45 us per
-// value of the format (a 16-bit format: seconds).
-// Throws lobit::Error (usage) when the MSE has no minimum at a finite positive
-// scale (it decreases toward scale 0: all values of one sign, none zero).
+// coarse formats, and for floating-point ones it has a local minimum at every
+// factor of 2 in the scale, all equal to ~1e-6. So a log grid of 401 points
+// over 8 decades around (density reach / amax) is scanned with a fast binary64
+// quadrature of the same integrals (relative accuracy ~1e-13), every grid
+// minimum within 5% of the best is refined (up to 64) on the derivative
+// dMSE/dscale, and the winner is polished on the exact 50-digit derivative:
+// its root is bracketed within 1e-10 relative and one regula falsi step taken
+// (so the scale is good to far better than 1e-10). `error` is exact_mse at
+// the returned scale. Minima equal to within ~1e-13 count as ties (one of them
+// is returned). Cost: three exact evaluations plus the scan; a few ms to 0.1 s
+// for formats of up to 8 bits, ~10 s for 16-bit ones.
+// Throws lobit::Error (usage) where the scan finds no interior minimum (not
+// expected for any set of two or more values: MSE -> 1 as scale -> 0).
 OptimalScale optimal_scale(const ElementFormat& f, Density d);
 OptimalScale optimal_scale_levels(std::span<const double> levels, Density d);
 

@@ -22,6 +22,11 @@ class TensorSource {
   virtual std::uint64_t cols() const = 0;
   virtual void fill_rows(std::uint64_t row0, std::uint64_t nrows, float* out) const = 0;
   virtual std::string name() const = 0;
+  // Rows already in memory, row-major from row0 on (no copy); null: use fill_rows.
+  virtual const float* view_rows(std::uint64_t row0) const {
+    (void)row0;
+    return nullptr;
+  }
   // The unit-variance density of every element, where one exists ("gauss",
   // "laplace", "uniform"): the exact closed-form error applies to it.
   virtual std::optional<std::string> density() const { return std::nullopt; }
@@ -35,6 +40,7 @@ class MemorySource final : public TensorSource {
   std::uint64_t cols() const override { return cols_; }
   void fill_rows(std::uint64_t row0, std::uint64_t nrows, float* out) const override;
   std::string name() const override { return name_; }
+  const float* view_rows(std::uint64_t row0) const override { return data_.data() + row0 * cols_; }
 
  private:
   std::span<const float> data_;
