@@ -276,6 +276,9 @@ LloydMaxResult solve_lloyd_max(Density d, int levels, double tolerance, int max_
         break;
       }
     }
+    // At the rounding floor (already within tolerance) no step makes
+    // progress any more: stop there.
+    if (!accepted && s.norm <= static_cast<LD>(tolerance)) break;
     if (!accepted) {
       // A plain Lloyd step (thresholds to the midpoints of the centroids)
       // never increases the MSE and keeps the thresholds ordered.

@@ -284,7 +284,6 @@ struct CellIntegrals {
   Real m0;  // int p
   Real g;   // int (x - c) p
   Real e;   // int (x - c)^2 p
-  bool quadrature = false;
 };
 
 // Gauss-Legendre over [a, b] (finite, p smooth on it) in 168 bits.
@@ -303,7 +302,6 @@ void quadrature_piece(Density d, const Real& a, const Real& b, const Real& c, Ce
 
 CellIntegrals quadrature_cell(Density d, const Point& A, const Point& B, const Real& c, double T) {
   CellIntegrals r;
-  r.quadrature = true;
   Real a = A.inf ? Real(-T) : rmax(A.x, Real(-T));
   Real b = B.inf ? Real(T) : rmin(B.x, Real(T));
   if (!(a < b)) return r;

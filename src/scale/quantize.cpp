@@ -120,14 +120,23 @@ GroupScale GroupQuantizer::choose(const GroupSummary& s, const float* x, std::si
     }
     case ScaleRule::mse: {
       if (!x) throw Error(Error::Kind::internal, "rule=mse needs the group's values", f_.text);
-      // Clipping ratios 1, 1 - 1/64, ..., 0.5: the least squared error wins (ties: the larger ratio).
+      // Clipping ratios 1, 1 - 1/64, ..., 0.5 of amax / max(element); for each, the
+      // stored scales just below and just above the target (so that the MX and
+      // noclip choices are among the candidates). The least squared error wins;
+      // ties keep the earlier candidate (the larger ratio, the lower scale).
       GroupScale best;
       double best_err = INFINITY;
+      Code last = ~Code{0};
       for (int j = 0; j <= 32; ++j) {
         const double ratio = 1.0 - j / 64.0;
-        GroupScale c = from_target(ratio * s.amax / emax_value_ / tensor_scale_, s, Rounding::nearest_even);
-        const double err = quantize(x, n, stride, c, nullptr, nullptr);
-        if (err < best_err) best_err = err, best = c;
+        const double target = ratio * s.amax / emax_value_ / tensor_scale_;
+        for (Rounding r : {Rounding::toward_zero, Rounding::up}) {
+          GroupScale c = from_target(target, s, r);
+          if (c.scale_code == last) continue;
+          last = c.scale_code;
+          const double err = quantize(x, n, stride, c, nullptr, nullptr);
+          if (err < best_err) best_err = err, best = c;
+        }
       }
       return best;
     }

@@ -121,15 +121,19 @@ TEST_CASE("absmax, noclip and mse rules with float scales") {
     double amax = 0;
     for (float v : x) amax = std::max(amax, std::fabs(static_cast<double>(v)));
     CHECK(amax / q.scales[0] <= 6.0);
-    // mse never does worse than absmax on its own group.
-    auto fa = parse_scaled("e2m1@16:e4m3"), fm = parse_scaled("e2m1@16:e4m3,rule=mse");
-    auto qa = quantize_tensor(*fa, x, 1, 16, 1), qm = quantize_tensor(*fm, x, 1, 16, 1);
-    double ea = 0, em = 0;
-    for (int k = 0; k < 16; ++k) {
-      ea += std::pow(qa.values[k] - x[k], 2);
-      em += std::pow(qm.values[k] - x[k], 2);
-    }
-    CHECK(em <= ea);
+    // mse never does worse than absmax, noclip or the MX rule on its own group.
+    auto err_of = [&](const char* spec) {
+      auto q = quantize_tensor(*parse_scaled(spec), x, 1, 16, 1);
+      double e = 0;
+      for (int k = 0; k < 16; ++k) e += std::pow(q.values[k] - x[k], 2);
+      return e;
+    };
+    const double em = err_of("e2m1@16:e4m3,rule=mse");
+    CHECK(em <= err_of("e2m1@16:e4m3"));
+    CHECK(em <= err_of("e2m1@16:e4m3,rule=noclip"));
+    const double em8 = err_of("e2m1@16:e8m0,rule=mse");
+    CHECK(em8 <= err_of("e2m1@16:e8m0"));
+    CHECK(em8 <= err_of("e2m1@16:e8m0,rule=noclip"));
   }
   // A float scale that underflows: reported, the group quantizes to zero.
   r = q1("int4@2:fp16", {1e-9f, 0.0f});
