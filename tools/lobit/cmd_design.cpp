@@ -28,15 +28,15 @@ std::string codebook_toml(const std::string& name, const std::string& summary, c
   return t;
 }
 
-void print_levels(const LloydMaxResult& r, const std::string& title, bool json) {
+void print_levels(const LloydMaxResult& r, const std::string& title, bool json, double power) {
   if (json) {
     print_json({{"design", title}, {"levels", r.levels}, {"thresholds", r.thresholds}, {"mse", r.mse},
-                {"iterations", r.iterations}, {"converged", r.converged}});
+                {"signal_power", power}, {"iterations", r.iterations}, {"converged", r.converged}});
     return;
   }
   fmt::print("# {}\n", title);
-  fmt::print("mse {}  (sqnr {:.4f} dB against unit power), {} iterations, {}\n", number_text(r.mse),
-             -10 * std::log10(r.mse), r.iterations, r.converged ? "converged" : "NOT converged");
+  fmt::print("mse {}  (sqnr {:.4f} dB; signal power {}), {} iterations, {}\n", number_text(r.mse),
+             10 * std::log10(power / r.mse), number_text(power), r.iterations, r.converged ? "converged" : "NOT converged");
   fmt::print("{:>5}  {:>24}  {:>24}\n", "index", "level", "threshold to the next");
   for (std::size_t i = 0; i < r.levels.size(); ++i)
     fmt::print("{:>5}  {:>24}  {:>24}\n", i, number_text(r.levels[i]),
@@ -74,6 +74,7 @@ void add_design_command(CLI::App& app) {
                           "e.g. --density gauss, or --source laplace --samples 100000");
       LloydMaxResult r;
       std::string title, provenance;
+      double power = 1.0;
       if (!o->density.empty()) {
         const Density d = density_of(o->density);
         r = lloyd_max(d, o->levels);
@@ -85,6 +86,9 @@ void add_design_command(CLI::App& app) {
         std::vector<float> buf(src->rows() * src->cols());
         src->fill_rows(0, src->rows(), buf.data());
         const std::vector<double> data(buf.begin(), buf.end());
+        double p2 = 0;
+        for (double v : data) p2 += v * v;
+        power = p2 / static_cast<double>(data.size());
         if (o->method == "lloyd") r = lloyd_data(data, o->levels);
         else if (o->method == "exact") r = kmeans_1d_exact(data, o->levels);
         else throw usage_error(fmt::format("unknown method '{}'", o->method), "--method", "use lloyd or exact");
@@ -96,7 +100,7 @@ void add_design_command(CLI::App& app) {
         const std::string name = o->name.empty() ? std::string("lloyd-max-") + std::to_string(o->levels) : o->name;
         write_file_atomic(o->out, codebook_toml(name, title, provenance, r.levels));
       }
-      print_levels(r, title, o->json);
+      print_levels(r, title, o->json, power);
       if (!o->out.empty() && !o->json) fmt::print("# written to {} (use codebook+file={})\n", o->out, o->out);
     });
   }
