@@ -21,7 +21,8 @@ test: build
 	cd $(BUILD_DIR) && ctest --output-on-failure -j $(JOBS)
 
 bench: build
-	$(BUILD_DIR)/lobit_bench --benchmark_min_time=0.5
+	$(BUILD_DIR)/tools/bench/lobit_bench --benchmark_min_time=0.5
+	$(BUILD_DIR)/tools/bench/lobit_score_bench --benchmark_min_time=0.5
 
 clean:
 	rm -rf $(BUILD_DIR)
