@@ -38,6 +38,16 @@ for f in e2m1:6 int4:7 nf4:1; do
   "$LOBIT" encode "$name" $scaled
 done
 
+section "Error per bit spent on an LLM-like weight matrix (1024 x 4096 of the model's 4096 x 11008 layout)"
+"$LOBIT" score int4@tensor:fp32 int4@row:fp16 mxfp4 nf4-block64-dq int4-group128-zero \
+  fp4-e4m3-block16-fp32-tensor shared-exp16-sub2-m4 mxfp6-e3m2 mxfp8-e4m3 --source llm --shape 1024x4096
+
+section "The same candidates on Gaussian weights, with the closed form where it exists"
+"$LOBIT" score e2m1,scale=0.4871 nf4,scale=2.863 mxfp4 nf4@64:fp16 int4@32:fp16 --source gauss --exact
+
+section "MSE-optimal scale of NF4 for Gaussian weights (exact)"
+"$LOBIT" design scale nf4 --density gauss
+
 section "Stochastic rounding is reproducible from a seed"
 "$LOBIT" encode e2m1 2.3 2.3 2.3 2.3 2.3 2.3 --round stochastic --seed 42
 
