@@ -238,16 +238,13 @@ double segment_mse(const std::vector<double>& x, const std::vector<std::size_t>&
   return static_cast<double>(s.value() / static_cast<LD>(x.size()));
 }
 
-}  // namespace
-
-namespace {
 // with_mse = false skips the 50-digit MSE (seconds for 65536 levels) where
 // only the levels are wanted.
 LloydMaxResult solve_lloyd_max(Density d, int levels, double tolerance, int max_iterations, bool with_mse) {
   const std::string where = fmt::format("lloyd_max {} levels={}", to_string(d), levels);
   check_levels(levels, 1, where);
   if (!(tolerance > 0)) throw usage_error("tolerance must be positive", where, "the default is 1e-13");
-  if (max_iterations < 0) throw usage_error("max_iterations must be >= 0", where);
+  if (max_iterations < 0) throw usage_error("max_iterations must be >= 0", where, "give a non-negative iteration cap");
   LloydMaxResult r;
   if (levels == 1) {
     r.levels = {0.0};
@@ -346,7 +343,7 @@ UniformOptimum optimal_uniform(Density d, int levels) {
 
 LloydMaxResult lloyd_data(std::span<const double> data, int levels, int max_iterations) {
   const std::string where = fmt::format("lloyd_data levels={}", levels);
-  if (max_iterations < 0) throw usage_error("max_iterations must be >= 0", where);
+  if (max_iterations < 0) throw usage_error("max_iterations must be >= 0", where, "give a non-negative iteration cap");
   const std::vector<double> x = sorted_data(data, levels, where);
   const std::size_t n = x.size(), k = static_cast<std::size_t>(levels);
   // Start: contiguous groups of distinct values with nearly equal counts.

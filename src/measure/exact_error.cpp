@@ -566,9 +566,9 @@ OptimalScale optimize_scale(const LevelSet& L, Density d, const std::string& whe
     if (start < -700 || start > 700) break;
   }
   if (best <= 0 || best >= K - 1)
-    throw usage_error("the MSE has no minimum at a finite positive scale", where,
-                      "it keeps falling toward scale 0 or infinity; a format whose values are all of one "
-                      "sign and away from zero cannot be fitted to a zero-mean density");
+    throw usage_error("the MSE has no minimum inside the searchable range of scales", where,
+                      "it keeps falling toward the end of binary64's range; evaluate chosen scales with "
+                      "exact_mse instead");
   // Every local minimum of the grid within 5% of the best grid value (at most
   // 64, the lowest first): floating-point formats have one per factor of 2 in
   // the scale, equal to ~1e-6, and the grid alone cannot rank them.

@@ -475,7 +475,7 @@ TEST_CASE("the ties-away reference rounds ties away from zero and agrees with ne
       const bool tie = mpfr_cmpabs(d1.get(), d2.get()) == 0;
       if (!tie || !(std::fabs(away) > std::fabs(even))) ++bad;
     }
-    INFO(name);
+    INFO(std::string(name));
     CHECK(differing > 1000);  // the inputs hold many exact midpoints
     CHECK(bad == 0);
   }

@@ -61,10 +61,11 @@ LloydMaxResult lloyd_data(std::span<const double> data, int levels, int max_iter
 // programming over the sorted data: an optimal k-partition of sorted points is
 // contiguous, and D_m(j) = min_i D_{m-1}(i) + SSE(i, j) has a monotone argmin
 // (the SSE of sorted points satisfies the quadrangle inequality), so each layer
-// is computed by divide and conquer in O(n log n): O(k n log n) time, k*n
-// 32-bit split indices of memory (k*n <= 2^27). Segment costs come from long
-// double prefix sums of the centred data, so the optimum is exact up to ties
-// within ~1e-15 relative; the returned levels and mse are recomputed directly
+// is computed by divide and conquer in O(n log n): O(k n log n) time and k*n
+// 32-bit split indices of memory (k*n <= 2^26, 256 MiB; beyond that a usage
+// error). Segment costs come from compensated long double prefix sums of the
+// data centred on its median, so the optimum is exact up to ties within
+// ~1e-15 relative; the returned levels and mse are recomputed directly
 // (compensated sums). `iterations` is 0, `converged` true.
 // Needs at least `levels` distinct finite values.
 LloydMaxResult kmeans_1d_exact(std::span<const double> data, int levels);
