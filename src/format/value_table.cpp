@@ -91,9 +91,6 @@ ValueTable::ValueTable(const ElementFormat& f) : spec_(f.spec()) {
     values_.push_back(v);
     codes_.push_back(c);
   }
-  if (!neg_zero_ && f.has_negative_zero()) {
-    // classify may mark -0 as zero with a negative decode; nothing more to do.
-  }
   nan_code_ = f.nan_code();
   default_overflow_ = f.resolve(Overflow::format_default);
 

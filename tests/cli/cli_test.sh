@@ -103,5 +103,43 @@ expect_error frobnicate
 expect_error inspect "e2m1@32:e8m0"
 expect_error encode e4m3 0x1ffff --from fp16
 
+# score: the JSON keys the docs promise; OCP MX FP4 costs 4.25 bits per element (OCP MX v1.0, section 5; from memory).
+expect_exit 0 score mxfp4 e2m1 --source gauss --samples 8192 --exact --json
+py "len(j) == 2 and all(set(r) >= {'format','source','bits_per_element','mse','sqnr_db','mse_exact'} for r in j)"
+py "[r['bits_per_element'] for r in j] == [4.0, 4.25]"
+py "j[0]['mse_exact'] is not None and j[1]['mse_exact'] is None"
+py "abs(j[0]['mse'] - j[0]['mse_exact']) < 5 * j[0]['mse_stderr']"
+expect_exit 0 score int4@32:fp16 --source laplace --samples 4096 --csv
+head -1 "$tmp/out" | grep -q '^format,source,rows,cols' && ok || bad "score --csv header"
+expect_exit 0 score int4@32:fp16 --source laplace --samples 4096 --md
+grep -q '^| `int4@32:fp16` | 4.5 |' "$tmp/out" && ok || bad "score --md row"
+grep -q 'validate accuracy on your own model' "$tmp/out" && ok || bad "score --md caution"
+expect_exit 0 score e2m1 --source gauss --samples 4096 --threads 1 --json
+cp "$tmp/out" "$tmp/t1"
+expect_exit 0 score e2m1 --source gauss --samples 4096 --threads 2 --json
+cmp -s "$tmp/out" "$tmp/t1" && ok || bad "score differs between 1 and 2 threads"
+expect_exit 0 score e2m1 --source gauss --samples 4096 --exact
+grep -q 'Error figures are estimates' "$tmp/out" && ok || bad "score caution line"
+expect_error score e2m1@1:e8m0 --source gauss
+expect_error score e2m1@32:e8m0 --source gauss --samples 0
+expect_error score e2m1@32:e8m0 --source student-t+nu=0
+expect_error score e2m1@32:e8m0 --source nowhere
+expect_error score e2m1@32:e8m0,ragged=refuse --source gauss --shape 4x100
+expect_error score e2m1@32:e8m0 --source gauss --axis 2
+expect_error score e2m1@32:fp16,rule=mx --source gauss
+
+# design: Lloyd-Max for the unit Gaussian, 4 levels: 0.4528, 1.510 (Max 1960, Table I; from memory).
+expect_exit 0 design lloyd-max --levels 4 --density gauss --json
+py "abs(j['levels'][3] - 1.510) < 0.001 and abs(j['levels'][2] - 0.4528) < 0.0001"
+expect_exit 0 design lloyd-max --levels 4 --density gauss --out "$tmp/lm.toml"
+expect_exit 0 inspect "codebook+file=$tmp/lm.toml" --json
+py "len(j['codes']) == 4 and j['codes'][3]['value'] > 1.5"
+expect_error design lloyd-max --levels 4 --density gauss --out "$tmp/no/such/dir/x.toml"
+ls "$tmp/no/such/dir" >/dev/null 2>&1 && bad "design --out left something behind" || ok
+expect_error design lloyd-max --levels 4
+expect_error design scale e2m1 --density cauchy
+expect_exit 0 design scale e2m1 --density gauss --json
+py "0.4 < j['scale'] < 0.6 and j['mse'] > 0"
+
 echo "cli: $pass passed, $fail failed"
 [ "$fail" -eq 0 ]
