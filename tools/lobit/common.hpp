@@ -40,5 +40,6 @@ void add_decode_command(CLI::App& app);
 void add_compare_command(CLI::App& app);
 void add_score_command(CLI::App& app);
 void add_design_command(CLI::App& app);
+void add_lut_command(CLI::App& app);
 
 }  // namespace lobit::cli
