@@ -103,6 +103,12 @@ expect_error frobnicate
 expect_error inspect "e2m1@32:e8m0"
 expect_error encode e4m3 0x1ffff --from fp16
 
+# inspect of a block-scaled format: its composition, then its element.
+expect_exit 0 inspect nf4-block64-dq --json --no-codes
+py "j['scaled']['nominal_bits_per_element'] == 4 + 8/64 + 32/(64*256) and j['scaled']['block'] == 64 and j['bits'] == 4"
+expect_exit 0 inspect "e2m1@32:e8m0"
+grep -q '^bits per element  4.25' "$tmp/out" && ok || bad "inspect e2m1@32:e8m0 bits per element"
+
 # score: the JSON keys the docs promise; OCP MX FP4 costs 4.25 bits per element (OCP MX v1.0, section 5; from memory).
 expect_exit 0 score mxfp4 e2m1 --source gauss --samples 8192 --exact --json
 py "len(j) == 2 and all(set(r) >= {'format','source','bits_per_element','mse','sqnr_db','mse_exact'} for r in j)"

@@ -8,6 +8,7 @@
 #include "lobit/format/properties.hpp"
 #include "lobit/format/spec.hpp"
 #include "lobit/format/value_table.hpp"
+#include "lobit/scale/scaled_format.hpp"
 
 namespace lobit::cli {
 
@@ -223,13 +224,54 @@ void add_inspect_command(CLI::App& app) {
     auto ov = parse_overflow(o->overflow);
     if (!ov) throw usage_error(fmt::format("unknown overflow policy '{}'", o->overflow), "--overflow",
                                "use default, saturate or special");
-    auto f = parse_element(o->spec);
-    const Preset* preset = find_preset(o->spec);
+    // A block-scaled format: its composition first, then its element.
+    std::shared_ptr<const ScaledFormat> scaled;
+    {
+      const Preset* sp = find_preset(o->spec.substr(0, o->spec.find(',')));
+      if (o->spec.find('@') != std::string::npos || o->spec.find(',') != std::string::npos || (sp && sp->scaled()))
+        scaled = parse_scaled(o->spec);
+    }
+    auto f = scaled ? scaled->element : parse_element(o->spec);
+    const Preset* preset = scaled ? nullptr : find_preset(o->spec);
     const FormatProperties p = properties(*f);
+    nlohmann::json scaled_json;
+    if (scaled) {
+      const ScaledFormat& s = *scaled;
+      std::string group = s.granularity == Granularity::block ? fmt::format("blocks of {}", s.block)
+                                                              : std::string(to_string(s.granularity));
+      scaled_json = {{"format", s.text},
+                     {"element", s.element->spec()},
+                     {"group", std::string(to_string(s.granularity))},
+                     {"block", s.block},
+                     {"scale", s.scale ? nlohmann::json(s.scale->spec()) : nlohmann::json(nullptr)},
+                     {"rule", s.scale ? nlohmann::json(std::string(to_string(s.rule))) : nlohmann::json(nullptr)},
+                     {"fixed_scale", s.fixed_scale},
+                     {"tensor_scale", s.tensor_scale ? nlohmann::json(s.tensor_scale->spec()) : nlohmann::json(nullptr)},
+                     {"zero_point", s.zero ? nlohmann::json(s.zero->spec()) : nlohmann::json(nullptr)},
+                     {"scales_quantized_by", s.scales ? nlohmann::json(s.scales->text) : nlohmann::json(nullptr)},
+                     {"sub_block", s.sub_block},
+                     {"sub_bits", s.sub_bits},
+                     {"element_max", s.element_max_value},
+                     {"nominal_bits_per_element", s.nominal_bits_per_element()}};
+      if (!o->json) {
+        fmt::print("scaled format     {}\n", s.text);
+        fmt::print("group             {}{}\n", group,
+                   s.scale ? fmt::format(", scale stored as {} (rule {})", s.scale->spec(), to_string(s.rule))
+                           : fmt::format(", fixed scale {}", number_text(s.fixed_scale)));
+        if (s.tensor_scale) fmt::print("tensor scale      {} per tensor\n", s.tensor_scale->spec());
+        if (s.zero) fmt::print("zero point        {} per group (x ~ s * (q - z), q unsigned)\n", s.zero->spec());
+        if (s.scales) fmt::print("scales quantized  by {}\n", s.scales->text);
+        if (s.sub_block) fmt::print("micro-exponents   {}-bit offset per {} elements\n", s.sub_bits, s.sub_block);
+        fmt::print("bits per element  {} (full blocks; `lobit score` gives the figure for a shape)\n",
+                   s.nominal_bits_per_element());
+        fmt::print("element max       {} (the magnitude amax is mapped to)\n\n", number_text(s.element_max_value));
+      }
+    }
     std::unique_ptr<ValueTable> t;
     if (f->bits() <= 16) t = std::make_unique<ValueTable>(*f);
     if (o->json) {
       auto j = to_json(*f, preset, p, t.get(), *ov);
+      if (scaled) j["scaled"] = scaled_json;
       if (o->no_codes) j.erase("codes"), j.erase("thresholds");
       print_json(j);
     } else {
