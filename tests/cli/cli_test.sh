@@ -100,7 +100,6 @@ expect_error decode e4m3 zz
 expect_error decode int4 16
 expect_error inspect
 expect_error frobnicate
-expect_error inspect "e2m1@32:e8m0"
 expect_error encode e4m3 0x1ffff --from fp16
 
 # inspect of a block-scaled format: its composition, then its element.
