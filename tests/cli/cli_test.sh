@@ -146,5 +146,47 @@ expect_error design scale e2m1 --density cauchy
 expect_exit 0 design scale e2m1 --density gauss --json
 py "0.4 < j['scale'] < 0.6 and j['mse'] > 0"
 
+# lut: kernel headers. Deterministic bytes; --out writes the same bytes whole; refusals exit 2 with one line.
+expect_exit 0 lut e2m1 --lang c
+cp "$tmp/out" "$tmp/lut1"
+grep -q 'static inline uint8_t lobit_e2m1_encode(float x)' "$tmp/out" && ok || bad "lut e2m1: no encoder"
+grep -q '^ \*   lobit lut e2m1 --lang c --decode-type f32$' "$tmp/out" && ok || bad "lut e2m1: command not recorded"
+expect_exit 0 lut e2m1 --lang c
+cmp -s "$tmp/out" "$tmp/lut1" && ok || bad "lut output differs between two runs"
+expect_exit 0 lut e2m1 --out "$tmp/e2m1.h"
+cmp -s "$tmp/e2m1.h" "$tmp/lut1" && ok || bad "lut --out differs from stdout"
+[ -s "$tmp/out" ] && bad "lut --out also printed on stdout" || ok
+expect_exit 0 lut e4m3 --lang cpp --namespace kernels::fp8
+grep -q '^namespace kernels::fp8 {' "$tmp/out" && ok || bad "lut --namespace"
+expect_exit 0 lut e2m1 --lang cuda --pack hi-first
+grep -q '__constant__' "$tmp/out" && grep -q 'ifndef __CUDA_ARCH__\|if !defined(__CUDA_ARCH__)' "$tmp/out" && ok || bad "lut cuda tables"
+expect_exit 0 lut fp16 --decode-type f16 --lang csv
+[ "$(grep -c '^code,' "$tmp/out")" -eq 65536 ] && ok || bad "lut csv: code rows"
+# OCP OFP8 (v1.0): E4M3 has 256 codes, 0x7f is NaN (from memory)
+expect_exit 0 lut e4m3 --lang json
+py "len(j['codes']) == 256 and j['codes'][0x7f]['class'] == 'nan' and j['nan_input_code'] == 0x7f"
+expect_exit 0 lut bf16 --decode-type f16 --allow-inexact
+grep -q 'INEXACT' "$tmp/out" && ok || bad "lut --allow-inexact states the error"
+expect_error lut fp32
+grep -q 'arithmetic encoder' "$tmp/err" && ok || bad "lut fp32: no hint to the arithmetic encoder"
+expect_error lut e2m1 --lang rust
+expect_error lut e2m1 --decode-type f8
+expect_error lut bf16 --decode-type f16
+expect_error lut e4m3 --pack lo-first
+expect_error lut e2m1 --pack middle-first
+expect_error lut e2m1 --lang cpp --namespace 9lives
+expect_error lut e2m1 --out "$tmp/no/such/dir/e2m1.h"
+ls "$tmp/no/such/dir" >/dev/null 2>&1 && bad "lut --out left something behind" || ok
+ls "$tmp"/*.lobit-partial >/dev/null 2>&1 && bad "lut --out left a partial file" || ok
+
+expect_exit 0 lut mxfp4
+grep -q 'lobit_mxfp4_dequantize_block' "$tmp/out" && grep -q '} lobit_mxfp4_block;' "$tmp/out" && ok || bad "lut mxfp4: no block layout"
+expect_error lut e2m1@16:e4m3,tensor-scale=fp32
+expect_error lut e2m1@32:fp32
+expect_error lut mxfp4 --lang json
+expect_exit 0 lut e2m1 --product int4 --lang cpp
+grep -q 'lobit_e2m1_x_int4_product_k_of' "$tmp/out" && ok || bad "lut --product: no integer table"
+expect_error lut e4m3 --product e2m1
+expect_error lut nf4 --product e2m1
 echo "cli: $pass passed, $fail failed"
 [ "$fail" -eq 0 ]

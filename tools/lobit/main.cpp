@@ -22,9 +22,7 @@ int main(int argc, char** argv) {
   lobit::cli::add_compare_command(app);
   lobit::cli::add_score_command(app);
   lobit::cli::add_design_command(app);
-#ifdef LOBIT_HAVE_LUT
   lobit::cli::add_lut_command(app);
-#endif
   try {
     app.parse(argc, argv);
   } catch (const CLI::CallForHelp& e) {
