@@ -1,5 +1,7 @@
 #include "lobit/measure/metrics.hpp"
 
+#include <algorithm>
+#include <bit>
 #include <cmath>
 
 #include "lobit/format/value_table.hpp"
@@ -36,6 +38,16 @@ void ErrorSums::merge(const ErrorSums& o) {
 ErrorAccumulator::ErrorAccumulator(const ScaledFormat& f, double top_threshold)
     : f_(f), top_threshold_(top_threshold) {
   if (f.element->bits() <= 16) hist_.assign(std::size_t{1} << f.element->bits(), 0);
+  if (f.element_table && !f.sub_block && !f.zero && f.code_element->bits() <= 16 &&
+      f.code_element->bits() <= f.element->bits()) {
+    kt_ = fused::make_kernel_table(*f.code_element);
+    vec_ = kt_.ok && fused::have_avx512();
+  }
+}
+
+std::vector<std::uint64_t>& ErrorAccumulator::histogram() {
+  if (vec_ && !hist_.empty()) fused::flush_histogram(hs_, kt_, hist_.data());
+  return hist_;
 }
 
 void ErrorAccumulator::add(const GroupView& g) {
@@ -114,10 +126,14 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
   const double s = sc.scale, z = sc.zero;
   const bool affine = f_.zero != nullptr, zero_scale = !(s > 0);
   const double chi = g.quantizer->clip_high(), clo = g.quantizer->clip_low();
-  int sexp = 0;
-  const bool pow2 = s > 0 && std::isfinite(s) && std::frexp(s, &sexp) == 0.5 && sexp > -1000 && sexp < 1000;
-  const double inv = pow2 ? 1.0 / s : 0.0;
-  const Code zcode = affine ? sc.zero_code : t.encode(0.0);
+  // s a power of two 2^(sexp - 1) with -1000 < sexp < 1000 (as frexp would say): a
+  // normal binary64 with a zero significand field and biased exponent sexp + 1022.
+  const std::uint64_t sbits = std::bit_cast<std::uint64_t>(s);
+  const std::uint64_t sfield = sbits >> 52;  // sign and biased exponent
+  const bool pow2 = s > 0 && (sbits & ((std::uint64_t{1} << 52) - 1)) == 0 && sfield > 22 && sfield < 2022;
+  // 1 / 2^k = 2^-k, normal for |k| < 1000: the biased exponent 2046 - field (what 1.0 / s gives).
+  const double inv = pow2 ? std::bit_cast<double>((2046 - sfield) << 52) : 0.0;
+  const Code zcode = affine ? sc.zero_code : (zero_scale ? t.encode(0.0) : 0);
   double ue = 0, sx = s_.sum_x, sx2 = s_.sum_x2, srel = s_.sum_rel, mae = s_.max_abs_err, max_x = s_.max_abs_x;
   double top_e2 = s_.top_err2;
   std::uint64_t nonzero = 0, zeroed = 0, top_n = 0, clip = 0;
@@ -126,6 +142,14 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
   // Fixed-scale formats have no group to mark NaN: check each input.
   const bool check = f_.granularity == Granularity::fixed;
   std::uint64_t skipped = 0;
+  // The kernels need y = x / s finite (|x| <= FLT_MAX): s > 1e-250 keeps |y| below 1e289.
+  if (vec_ && g.stride == 1 && !affine && !zero_scale && !check && s > 1e-250) {
+    // The vector kernel (fused_kernels.hpp): the same per-element terms, the
+    // group's sums formed in lanes.
+    fused::GroupSums r;
+    fused::group_avx512(kt_, g.x, g.n, s, inv, pow2, chi, clo, top, r, lanes_, hist ? &hs_ : nullptr);
+    ue = r.err2;
+  } else  // the scalar loop: the definition the kernels reproduce
   for (std::size_t i = 0; i < g.n; ++i) {
     const double x = g.x[i * g.stride];
     if (check && !std::isfinite(x)) {
@@ -191,6 +215,31 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
     s_.u_n += dn;
     s_.u_n2 += dn * dn;
     s_.u_en += ue * dn;
+  }
+}
+
+void ErrorAccumulator::add_rows_fused(const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+                                      const float* data) {
+  // As quantize_rows_impl's block loop along axis 1 (raw mode): summarize, choose, fused loop.
+  // One quantizer per accumulator and tensor scale (building one per chunk costs a value
+  // table and, for rule mx, the scale codes).
+  if (!rows_q_ || rows_q_->tensor_scale() != plan.tensor_scale)
+    rows_q_ = std::make_shared<const GroupQuantizer>(f_, plan.tensor_scale);
+  const GroupQuantizer& q = *rows_q_;
+  const std::uint64_t cols = plan.cols, k = static_cast<std::uint64_t>(f_.block);
+  for (std::uint64_t r = 0; r < nrows; ++r) {
+    for (std::uint64_t j = 0; j < plan.blocks_along; ++j) {
+      const std::uint64_t start = j * k, len = std::min(k, cols - start);
+      const float* x = data + r * cols + start;
+      const std::size_t n = static_cast<std::size_t>(len);
+      // The rules here (mx, absmax, noclip; no zero point) read only amax and the
+      // nonfinite count of the summary: the kernel computes amax alone; a group with
+      // a NaN or infinity takes the full summary.
+      GroupSummary s;
+      if (!fused::amax_avx512(x, n, s.amax)) s = summarize(x, n, 1);
+      const GroupScale g = q.choose(s, x, n, 1);
+      add_fused(GroupView{(row0 + r) * plan.blocks_along + j, x, n, 1, nullptr, nullptr, &g, 0, &q});
+    }
   }
 }
 

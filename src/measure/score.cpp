@@ -10,6 +10,7 @@
 #include <thread>
 
 #include "lobit/error.hpp"
+#include "lobit/measure/fused_kernels.hpp"
 
 namespace lobit {
 
@@ -27,14 +28,47 @@ namespace {
 
 // Magnitude histogram on the top 16 bits of the float32 pattern of |x|
 // (bins 2^-7 wide in relative terms): the threshold of the largest fraction.
+//
+// Only the bins from the threshold up matter (and the count of NaN/inf). With
+// bound >= every top count the tensor can ask for (ceil(fraction * elements)),
+// any bin L with at least `bound` finite inputs at or above it seen so far is a
+// lower bound of the final threshold (counts only grow), so from then on inputs
+// below bin L are not counted: bins at or above the last such L are complete, and
+// threshold() stops at the first bin from the top that reaches the count, which
+// lies at or above every L of every thread. The result is the full histogram's.
 struct MagnitudeHistogram {
   std::vector<std::uint64_t> bins = std::vector<std::uint64_t>(1 << 15, 0);
+  std::uint64_t bound = 0;     // 0: count every input
+  std::uint32_t floor_bin = 0;  // inputs in lower bins are not counted
+  // NaN and infinities fall into bins 0x7f80 and up, which no finite float32
+  // reaches (0x7f7fffff >> 16 = 0x7f7f) and every floor lies below.
+  static constexpr std::uint32_t kNonfinite = 0x7f80;
   void add(const float* x, std::size_t n) {
-    for (std::size_t i = 0; i < n; ++i) {
-      if (!std::isfinite(x[i])) continue;
-      const std::uint32_t b = std::bit_cast<std::uint32_t>(std::fabs(x[i]));
-      ++bins[b >> 16];
+    std::uint64_t* b = bins.data();
+    if (floor_bin == 0) {
+      for (std::size_t i = 0; i < n; ++i) ++b[(std::bit_cast<std::uint32_t>(x[i]) & 0x7fffffffu) >> 16];
+    } else if (!fused::high_bins_avx512(x, n, floor_bin << 16, b)) {
+      const std::uint32_t lo = floor_bin << 16;
+      for (std::size_t i = 0; i < n; ++i) {
+        const std::uint32_t a = std::bit_cast<std::uint32_t>(x[i]) & 0x7fffffffu;
+        if (a >= lo) ++b[a >> 16];
+      }
     }
+    if (!bound) return;
+    std::uint64_t acc = 0;
+    for (std::uint32_t k = kNonfinite; k-- > floor_bin;) {
+      acc += b[k];
+      if (acc >= bound) {
+        floor_bin = k;
+        break;
+      }
+    }
+  }
+  // Clears the NaN/inf bins and returns how many inputs they held.
+  std::uint64_t finish() {
+    std::uint64_t nonfinite = 0;
+    for (std::size_t k = kNonfinite; k < bins.size(); ++k) nonfinite += bins[k], bins[k] = 0;
+    return nonfinite;
   }
   // The lower edge of the bin where the top `count` elements begin.
   double threshold(std::uint64_t count) const {
@@ -74,6 +108,10 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
   builders.reserve(formats.size());
   for (const auto& f : formats) builders.emplace_back(*f, rows, cols, o.axis);
   MagnitudeHistogram mh;
+  // Every top count below is at most this (finite <= rows * cols).
+  const auto top_bound = std::max<std::uint64_t>(
+      static_cast<std::uint64_t>(std::ceil(o.top_fraction * static_cast<double>(rows * cols))), 1);
+  mh.bound = top_bound;
   std::uint64_t finite = 0;
   int threads = o.threads > 0 ? o.threads : static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
   threads = static_cast<int>(std::min<std::uint64_t>(static_cast<std::uint64_t>(threads), nchunks));
@@ -98,6 +136,7 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
   } else {
     // Only the magnitude histogram: integer counts, merged in any order.
     std::vector<MagnitudeHistogram> part(static_cast<std::size_t>(threads));
+    for (auto& p : part) p.bound = top_bound;
     std::atomic<std::uint64_t> next_pre{0};
     auto pre = [&](int t) {
       std::vector<float> buf;
@@ -115,7 +154,7 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
     for (auto& p : part)
       for (std::size_t b = 0; b < p.bins.size(); ++b) mh.bins[b] += p.bins[b];
   }
-  for (auto v : mh.bins) finite += v;
+  finite = rows * cols - mh.finish();
   std::vector<TensorPlan> plans;
   for (auto& b : builders) plans.push_back(b.finish());
   const auto top_count = static_cast<std::uint64_t>(std::ceil(o.top_fraction * static_cast<double>(finite)));
@@ -140,7 +179,9 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
         const float* data = rows_of(r0, nr, buf);
         for (std::size_t i = 0; i < nf; ++i) {
           acc[i].sums() = ErrorSums{};
-          if (acc[i].fused_ok() && !o.unfused)
+          if (acc[i].rows_fused_ok(o.axis) && !o.unfused)
+            acc[i].add_rows_fused(plans[i], r0, nr, data);
+          else if (acc[i].fused_ok() && !o.unfused)
             scan_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add_fused(g); });
           else
             quantize_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add(g); });

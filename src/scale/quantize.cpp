@@ -1,6 +1,7 @@
 #include "lobit/scale/quantize.hpp"
 
 #include <algorithm>
+#include <bit>
 #include <cmath>
 #include <fmt/format.h>
 #include <limits>
@@ -9,6 +10,7 @@
 #include "lobit/format/integer.hpp"
 #include "lobit/format/properties.hpp"
 #include "lobit/format/value_table.hpp"
+#include "lobit/measure/fused_kernels.hpp"
 
 namespace lobit {
 
@@ -16,6 +18,13 @@ namespace {
 constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
 
 std::uint64_t ceil_div(std::uint64_t a, std::uint64_t b) { return (a + b - 1) / b; }
+
+// std::ilogb without the library call for normal numbers (the exponent field);
+// zero, subnormals, infinities and NaN go to std::ilogb.
+int fast_ilogb(double a) {
+  const int e = static_cast<int>((std::bit_cast<std::uint64_t>(a) >> 52) & 0x7ff);
+  return (e == 0 || e == 0x7ff) ? std::ilogb(a) : e - 1023;
+}
 
 // Exponent range of a power-of-two scale format.
 void pow2_range(const ElementFormat& s, int& lo, int& hi) {
@@ -27,6 +36,9 @@ void pow2_range(const ElementFormat& s, int& lo, int& hi) {
 
 GroupSummary summarize(const float* x, std::size_t n, std::size_t stride) {
   GroupSummary s;
+  // The vector kernel gives the same summary where it applies (finite inputs,
+  // nonzero min and max; see fused_kernels.hpp).
+  if (stride == 1 && n >= 8 && fused::have_avx512() && fused::summarize_avx512(x, n, s.amax, s.min, s.max)) return s;
   bool first = true;
   for (std::size_t i = 0; i < n; ++i) {
     const double v = x[i * stride];
@@ -48,6 +60,14 @@ GroupQuantizer::GroupQuantizer(const ScaledFormat& f, double tensor_scale) : f_(
   qmax_ = f.zero ? emax_value_ : 0;
   emax_exp_ = std::ilogb(emax_value_);
   if (f.scale && f.scale->family() == "pow2") pow2_range(*f.scale, scale_lo_exp_, scale_hi_exp_);
+  if (f.rule == ScaleRule::mx && f.scale && f.granularity != Granularity::fixed && scale_hi_exp_ >= scale_lo_exp_ &&
+      scale_hi_exp_ - scale_lo_exp_ < 4096) {
+    // The stored code of every scale 2^e the MX rule can pick (the same encode, done once).
+    for (int e = scale_lo_exp_; e <= scale_hi_exp_; ++e) {
+      mx_pow_.push_back(std::ldexp(1.0, e));
+      mx_codes_.push_back(f.scale->encode(mx_pow_.back(), Rounding::nearest_even, Overflow::saturate));
+    }
+  }
   // Half a gap beyond each end of the element's values.
   const ValueTable t(*f.code_element);
   const auto& v = t.values();
@@ -100,17 +120,22 @@ GroupScale GroupQuantizer::choose(const GroupSummary& s, const float* x, std::si
     case ScaleRule::mx: {
       // OCP MX: shared exponent floor(log2(amax)) - emax(element), by ilogb (exact),
       // clamped to the scale format's range. amax = 0 takes the smallest scale.
-      const double a = s.amax / tensor_scale_;
-      int e = a == 0 ? scale_lo_exp_ : std::ilogb(a) - emax_exp_;
+      const double a = tensor_scale_ == 1.0 ? s.amax : s.amax / tensor_scale_;  // x / 1 == x
+      int e = a == 0 ? scale_lo_exp_ : fast_ilogb(a) - emax_exp_;
       if (a != 0 && e > scale_hi_exp_) g.saturated = true;
       e = std::clamp(e, scale_lo_exp_, scale_hi_exp_);
+      if (!mx_codes_.empty()) {
+        g.scale_code = mx_codes_[static_cast<std::size_t>(e - scale_lo_exp_)];
+        g.scale = mx_pow_[static_cast<std::size_t>(e - scale_lo_exp_)] * tensor_scale_;
+        return g;
+      }
       g.scale_code = f_.scale->encode(std::ldexp(1.0, e), Rounding::nearest_even, Overflow::saturate);
       g.scale = std::ldexp(1.0, e) * tensor_scale_;
       return g;
     }
-    case ScaleRule::absmax: return from_target(s.amax / emax_value_ / tensor_scale_, s, Rounding::nearest_even);
+    case ScaleRule::absmax: return from_target(amax_target(s.amax), s, Rounding::nearest_even);
     case ScaleRule::noclip: {
-      GroupScale c = from_target(s.amax / emax_value_ / tensor_scale_, s, Rounding::up);
+      GroupScale c = from_target(amax_target(s.amax), s, Rounding::up);
       // Step up until the largest input fits (the quotient above was rounded).
       for (int i = 0; i < 4 && c.scale > 0 && s.amax / c.scale > emax_value_ && !c.saturated; ++i) {
         const double next = std::nextafter(f_.scale->decode(c.scale_code), INFINITY);

@@ -2,6 +2,7 @@
 // hand-worked blocks, and whole-tensor quantization.
 #include <doctest/doctest.h>
 
+#include <algorithm>
 #include <cmath>
 #include <random>
 
@@ -265,13 +266,20 @@ TEST_CASE("the scorer's fused loop gives the same sums as quantize + accumulate"
   for (std::size_t i = 0; i < fs.size(); ++i) {
     INFO(fs[i]->text);
     const ErrorReport &p = ra.rows[i].report, &q = rb.rows[i].report;
-    CHECK(p.mse == q.mse);
-    CHECK(p.mse_stderr == q.mse_stderr);
+    // Floating sums may be formed in another fixed order (lane partial sums): 1e-12
+    // relative; counts, maxima and the code histogram are exact.
+    auto close = [](double u, double v) {
+      return u == v || std::fabs(u - v) <= 1e-12 * std::max(std::fabs(u), std::fabs(v));
+    };
+    CHECK(close(p.mse, q.mse));
+    CHECK(close(p.mse_stderr, q.mse_stderr));
     CHECK(p.max_abs_err == q.max_abs_err);
-    CHECK(p.mean_rel_err == q.mean_rel_err);
+    CHECK(close(p.mean_rel_err, q.mean_rel_err));
     CHECK(p.clip_rate == q.clip_rate);
     CHECK(p.zero_rate == q.zero_rate);
-    CHECK(p.top_mse == q.top_mse);
+    CHECK(close(p.top_mse, q.top_mse));
+    CHECK(p.top_n == q.top_n);
+    CHECK(p.codes_used == q.codes_used);
     CHECK(p.entropy_bits == q.entropy_bits);
     CHECK(p.nan_groups == q.nan_groups);
     CHECK(p.nonfinite == q.nonfinite);

@@ -3,9 +3,11 @@
 // the caller (chunk order), integer counts in any order, so results do not
 // depend on the thread count.
 #include <cstdint>
+#include <memory>
 #include <optional>
 #include <vector>
 
+#include "lobit/measure/fused_kernels.hpp"
 #include "lobit/scale/quantize.hpp"
 
 namespace lobit {
@@ -40,14 +42,42 @@ class ErrorAccumulator {
   // and no micro-exponents: fused_ok() says so.
   void add_fused(const GroupView& g);
   bool fused_ok() const { return f_.element_table && !f_.sub_block; }
-  ErrorSums& sums() { return s_; }
-  const ErrorSums& sums() const { return s_; }
-  std::vector<std::uint64_t>& histogram() { return hist_; }
+  // Rows row0 .. row0 + nrows - 1 of a block format along axis 1: the same groups,
+  // summaries, scales and sums as scan_rows with add_fused, without the visitor
+  // (rows_fused_ok() says where it applies).
+  void add_rows_fused(const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows, const float* data);
+  bool rows_fused_ok(int axis) const {
+    return fused_ok() && axis == 1 && f_.granularity == Granularity::block && !f_.scales && !f_.zero &&
+           f_.rule != ScaleRule::mse;
+  }
+  // The sums (the vector kernels' lane sums are added first).
+  ErrorSums& sums() {
+    flush_lanes();
+    return s_;
+  }
+  const ErrorSums& sums() const {
+    flush_lanes();
+    return s_;
+  }
+  // Element code usage (pending vector-kernel counts are added first).
+  std::vector<std::uint64_t>& histogram();
+  // Whether add_fused runs the vector kernels here (formats of up to 16 values on AVX-512 CPUs).
+  bool vector_kernels() const { return vec_; }
 
  private:
+  void flush_lanes() const {
+    if (lanes_.pending)
+      fused::flush_lanes(lanes_, s_.sum_x, s_.sum_x2, s_.sum_rel, s_.top_err2, s_.max_abs_err, s_.max_abs_x,
+                         s_.nonzero, s_.zeroed, s_.top_n, s_.clipped);
+  }
+  std::shared_ptr<const GroupQuantizer> rows_q_;  // add_rows_fused's quantizer
+  mutable fused::LaneSums lanes_;  // the kernels' sums not yet in s_ (flushed when s_ is read)
+  fused::KernelTable kt_;   // the element table in the kernels' layout
+  fused::HistState hs_;     // index counts not yet added to hist_
+  bool vec_ = false;
   const ScaledFormat& f_;
   double top_threshold_;
-  ErrorSums s_;
+  mutable ErrorSums s_;
   std::vector<std::uint64_t> hist_;  // element code usage (formats up to 16 bits)
 };
 

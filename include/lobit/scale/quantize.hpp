@@ -71,6 +71,11 @@ class GroupQuantizer {
 
  private:
   GroupScale from_target(double target, const GroupSummary& s, Rounding r) const;
+  // amax / max(element) / tensor scale (no division by a tensor scale of 1: the same value).
+  double amax_target(double amax) const {
+    const double t = amax / emax_value_;
+    return tensor_scale_ == 1.0 ? t : t / tensor_scale_;
+  }
 
   const ScaledFormat& f_;
   double tensor_scale_;
@@ -80,6 +85,8 @@ class GroupQuantizer {
   std::shared_ptr<const ElementFormat> unsigned_element_;  // affine
   double qmax_ = 0;         // affine: largest unsigned code value
   double clip_lo_ = 0, clip_hi_ = 0;  // element-domain bounds past which an input counts as clipped
+  std::vector<Code> mx_codes_;   // rule mx: scale codes of 2^e, e = scale_lo_exp_ ... scale_hi_exp_
+  std::vector<double> mx_pow_;   // and the values 2^e
 };
 
 // What quantizing a tensor needs beyond one chunk of rows: the per-tensor
