@@ -170,7 +170,10 @@ void add_score_command(CLI::App& app) {
       return;
     }
     fmt::print("# source {} ({}), {} samples, seed {}\n", src->name(), shape, res.elements, o->seed);
-    fmt::print("# elements rounded nearest-even and saturating; reduction axis {} ({}); 95% intervals over groups\n",
+    fmt::print("# elements rounded nearest-even and saturating; scale rule as each spec says (default: mx for "
+               "power-of-two scales, absmax otherwise)\n");
+    fmt::print("# reduction axis {} ({}); a short last block is scored as it is (noted per format); 95% intervals "
+               "over groups\n",
                o->axis, o->axis == 1 ? "blocks run along rows" : "blocks run down columns");
     std::size_t w = 6;
     for (const auto& r : rows) w = std::max(w, r.name.size());
