@@ -11,6 +11,7 @@
 #include <tuple>
 #include <toml++/toml.h>
 
+#include "lobit/detail/edit_distance.hpp"
 #include "lobit/error.hpp"
 #include "lobit/format/codebook.hpp"
 #include "lobit/format/integer.hpp"
@@ -36,17 +37,7 @@ std::string lower(std::string_view s) {
   return r;
 }
 
-std::size_t edit_distance(std::string_view a, std::string_view b) {
-  std::vector<std::size_t> prev(b.size() + 1), cur(b.size() + 1);
-  for (std::size_t j = 0; j <= b.size(); ++j) prev[j] = j;
-  for (std::size_t i = 1; i <= a.size(); ++i) {
-    cur[0] = i;
-    for (std::size_t j = 1; j <= b.size(); ++j)
-      cur[j] = std::min({prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (a[i - 1] == b[j - 1] ? 0 : 1)});
-    std::swap(prev, cur);
-  }
-  return prev[b.size()];
-}
+using detail::edit_distance;
 
 double parse_double(std::string_view text, const std::string& where) {
   std::string s(text);

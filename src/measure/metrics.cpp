@@ -50,6 +50,21 @@ std::vector<std::uint64_t>& ErrorAccumulator::histogram() {
   return hist_;
 }
 
+void ErrorAccumulator::add_unit(double ue, std::uint64_t un) {
+  // One group: its squared-error sum and count, for the MSE and its interval.
+  s_.n += un;
+  s_.sum_err2 += ue;
+  if (un) {
+    ++s_.units;
+    const double dn = static_cast<double>(un);
+    s_.u_e += ue;
+    s_.u_e2 += ue * ue;
+    s_.u_n += dn;
+    s_.u_n2 += dn * dn;
+    s_.u_en += ue * dn;
+  }
+}
+
 void ErrorAccumulator::add(const GroupView& g) {
   const GroupScale& sc = *g.scale;
   // Tensor and column groups arrive in several visits: the caller counts those.
@@ -93,17 +108,7 @@ void ErrorAccumulator::add(const GroupView& g) {
     if (!hist_.empty()) ++hist_[g.codes[i]];
   }
   if (!sc.nan) s_.clipped += g.clipped;
-  s_.n += un;
-  s_.sum_err2 += ue;
-  if (un) {
-    ++s_.units;
-    const double dn = static_cast<double>(un);
-    s_.u_e += ue;
-    s_.u_e2 += ue * ue;
-    s_.u_n += dn;
-    s_.u_n2 += dn * dn;
-    s_.u_en += ue * dn;
-  }
+  add_unit(ue, un);
 }
 
 void ErrorAccumulator::add_fused(const GroupView& g) {
@@ -205,17 +210,7 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
   s_.clipped += clip;
   s_.nonfinite += skipped;
   const std::uint64_t un = g.n - skipped;
-  s_.n += un;
-  s_.sum_err2 += ue;
-  if (un) {
-    ++s_.units;
-    const double dn = static_cast<double>(un);
-    s_.u_e += ue;
-    s_.u_e2 += ue * ue;
-    s_.u_n += dn;
-    s_.u_n2 += dn * dn;
-    s_.u_en += ue * dn;
-  }
+  add_unit(ue, un);
 }
 
 void ErrorAccumulator::add_rows_fused(const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,

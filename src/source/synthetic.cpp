@@ -15,6 +15,7 @@
 #include <unordered_set>
 #include <utility>
 
+#include "lobit/detail/edit_distance.hpp"
 #include "lobit/error.hpp"
 #include "lobit/source/random.hpp"
 
@@ -56,17 +57,7 @@ const char* keys_of(SourceKind k) {
   }
 }
 
-std::size_t edit_distance(std::string_view a, std::string_view b) {
-  std::vector<std::size_t> prev(b.size() + 1), cur(b.size() + 1);
-  for (std::size_t j = 0; j <= b.size(); ++j) prev[j] = j;
-  for (std::size_t i = 1; i <= a.size(); ++i) {
-    cur[0] = i;
-    for (std::size_t j = 1; j <= b.size(); ++j)
-      cur[j] = std::min({prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (a[i - 1] == b[j - 1] ? 0 : 1)});
-    std::swap(prev, cur);
-  }
-  return prev[b.size()];
-}
+using detail::edit_distance;
 
 std::string nearest_names(std::string_view name) {
   std::vector<std::pair<std::size_t, std::string_view>> scored;
