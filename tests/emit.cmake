@@ -34,6 +34,14 @@ target_compile_definitions(emit_lut_block_test PRIVATE
   LOBIT_EMIT_TEST_DIR="${LOBIT_EMIT_TEST_DIR}")
 
 lobit_test(emit_lut_product_test SOURCES emit/lut_product_test.cpp LABELS unit LIBS ${CMAKE_DL_LIBS})
+target_link_libraries(emit_lut_product_test PRIVATE nlohmann_json::nlohmann_json)
 target_compile_definitions(emit_lut_product_test PRIVATE
   LOBIT_TEST_C_COMPILER="${LOBIT_TEST_C_COMPILER}" LOBIT_TEST_CXX_COMPILER="${CMAKE_CXX_COMPILER}"
   LOBIT_EMIT_TEST_DIR="${LOBIT_EMIT_TEST_DIR}")
+
+foreach(t stochastic scaled_int)
+  lobit_test(emit_lut_${t}_test SOURCES emit/lut_${t}_test.cpp LABELS unit LIBS ${CMAKE_DL_LIBS})
+  target_compile_definitions(emit_lut_${t}_test PRIVATE
+    LOBIT_TEST_C_COMPILER="${LOBIT_TEST_C_COMPILER}" LOBIT_TEST_CXX_COMPILER="${CMAKE_CXX_COMPILER}"
+    LOBIT_EMIT_TEST_DIR="${LOBIT_EMIT_TEST_DIR}")
+endforeach()

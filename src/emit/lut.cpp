@@ -1,5 +1,6 @@
 #include "lobit/emit/lut.hpp"
 
+#include <algorithm>
 #include <bit>
 #include <cctype>
 #include <functional>
@@ -28,6 +29,7 @@ std::optional<DecodeType> parse_decode_type(std::string_view n) {
   if (n == "f32" || n == "fp32" || n == "float32") return DecodeType::f32;
   if (n == "f16" || n == "fp16" || n == "float16") return DecodeType::f16;
   if (n == "bf16" || n == "bfloat16") return DecodeType::bf16;
+  if (n == "int" || n == "scaled-int") return DecodeType::scaled_int;
   return std::nullopt;
 }
 std::optional<PackOrder> parse_pack_order(std::string_view n) {
@@ -50,6 +52,7 @@ std::string_view to_string(DecodeType t) {
     case DecodeType::f32: return "f32";
     case DecodeType::f16: return "f16";
     case DecodeType::bf16: return "bf16";
+    case DecodeType::scaled_int: return "int";
   }
   return "?";
 }
@@ -191,6 +194,7 @@ LutEncodePlan plan_encode(const ElementFormat& f, Overflow overflow) {
 
 DecodeTable decode_table(const ElementFormat& f, DecodeType type) {
   require_table_width(f);
+  if (type == DecodeType::scaled_int) type = DecodeType::f32;  // the integer table is scaled_int_table's
   DecodeTable t;
   t.type = type;
   const Code n = Code{1} << f.bits();
@@ -231,6 +235,105 @@ DecodeTable decode_table(const ElementFormat& f, DecodeType type) {
   return t;
 }
 
+ScaledIntTable scaled_int_table(const ElementFormat& f) {
+  require_table_width(f);
+  const Code n = Code{1} << f.bits();
+  ScaledIntTable t;
+  std::vector<double> v(n, 0.0);
+  int e = std::numeric_limits<int>::max();
+  for (Code c = 0; c < n; ++c) {
+    const CodeClass k = f.classify(c);
+    const bool num = k == CodeClass::zero || k == CodeClass::subnormal || k == CodeClass::normal;
+    t.number.push_back(num);
+    if (!num) continue;
+    v[c] = f.decode(c);
+    if (v[c] == 0) continue;
+    int ex;
+    const double m = std::frexp(std::fabs(v[c]), &ex);  // |v| = m * 2^ex, m in [0.5, 1)
+    double sig = std::ldexp(m, 53);                     // an integer below 2^53
+    int low = ex - 53;
+    while (std::fmod(sig, 2.0) == 0) sig /= 2, ++low;
+    e = std::min(e, low);
+  }
+  if (e == std::numeric_limits<int>::max()) e = 0;
+  t.exponent = e;
+  double kmin = 0, kmax = 0;
+  std::optional<Code> worst;
+  for (Code c = 0; c < n; ++c) {
+    const double kd = t.number[c] ? std::ldexp(v[c], -e) : 0.0;  // exact: a power-of-two scaling (or inf)
+    if (!std::isfinite(kd) || std::fabs(kd) > 0x1p32) {
+      if (!worst) worst = c;
+      t.k.push_back(0);
+      continue;
+    }
+    kmin = std::min(kmin, kd);
+    kmax = std::max(kmax, kd);
+    t.k.push_back(static_cast<std::int64_t>(kd));
+  }
+  t.is_signed = kmin < 0;
+  const double lim32 = t.is_signed ? 0x1p31 : 0x1p32;
+  const bool fits = !worst && (t.is_signed ? (kmin >= -lim32 && kmax <= lim32 - 1) : kmax <= lim32 - 1);
+  if (!fits) {
+    // The largest |k| over all codes, for the message.
+    Code wc = 0;
+    double wk = 0;
+    for (Code c = 0; c < n; ++c)
+      if (t.number[c] && std::fabs(std::ldexp(v[c], -e)) > wk) wk = std::fabs(std::ldexp(v[c], -e)), wc = c;
+    throw usage_error(fmt::format("no 32-bit integer table holds this format: with the common exponent 2^({}) (the lowest "
+                                  "set bit over all values) code {} needs k = {} ({}), past the {} 32-bit range",
+                                  e, code_hex(wc, f.bits()), std::isfinite(wk) ? fmt::format("{:.17g}", wk) : "inf",
+                                  hexv(v[wc]), t.is_signed ? "signed" : "unsigned"),
+                      "--decode-type int", "use --decode-type f32 (or f16 / bf16)");
+  }
+  const double lo = t.is_signed ? kmin : 0, hi = kmax;
+  t.type_bits = 32;
+  for (int b : {8, 16}) {
+    const double L = t.is_signed ? -std::ldexp(1.0, b - 1) : 0, H = std::ldexp(1.0, t.is_signed ? b - 1 : b) - 1;
+    if (lo >= L && hi <= H) {
+      t.type_bits = b;
+      break;
+    }
+  }
+  return t;
+}
+
+LutStochasticPlan plan_stochastic(const ElementFormat& f, Overflow overflow) {
+  require_table_width(f);
+  const ValueTable vt(f);
+  LutStochasticPlan p;
+  const Overflow o = f.resolve(overflow);
+  p.values = vt.values();
+  p.codes = vt.codes();
+  const double top = p.values.back(), bottom = p.values.front();
+  const double fmax = static_cast<double>(FLT_MAX);
+  // The same virtual neighbours ValueTable uses (value_table.cpp); kept only where a float32 can lie past that end.
+  if (auto vn = f.virtual_next_above_max()) {
+    if (top < fmax) {
+      p.upper_virtual = vn->value;
+      p.upper_overflow_code = f.encode(vn->value, Rounding::stochastic, o, 0);
+    }
+    if (f.is_signed() && bottom == -top && bottom > -fmax) {
+      p.lower_virtual = -vn->value;
+      p.lower_overflow_code = f.encode(-vn->value, Rounding::stochastic, o, 0);
+    }
+  }
+  for (std::size_t i = 0; i < p.values.size(); ++i)
+    if (p.values[i] == 0) p.zero_index = i;
+  if (p.zero_index) {
+    const Code nz = f.encode(-0.0, Rounding::stochastic, o, 0);
+    if (nz != p.codes[*p.zero_index]) p.negative_zero_code = nz;
+  }
+  if (auto nc = f.nan_code()) {
+    p.nan_result = *nc;
+    p.nan_from_library = true;
+  } else {
+    p.nan_result = f.encode(0.0, Rounding::nearest_even, o);  // as the nearest-even encoder: one fixed code
+  }
+  p.pos_inf_result = f.encode(INFINITY, Rounding::stochastic, o, 0);
+  p.neg_inf_result = f.encode(-INFINITY, Rounding::stochastic, o, 0);
+  return p;
+}
+
 namespace {
 
 bool valid_namespace(const std::string& ns) {
@@ -258,6 +361,8 @@ struct Emitter {
   std::string stem, P, M;  // P: lobit_<stem>, M: LOBIT_<STEM>
   std::string out;
   const ScaledFormat* scaled = nullptr;  // block-scaled: the block layout and dequantize are emitted too
+  std::optional<ScaledIntTable> idec{};  // --decode-type int: the k table replaces the float decode table
+  std::optional<LutStochasticPlan> sr{}; // --stochastic
   bool c_lang() const { return o.language == LutLanguage::c; }
   bool cuda() const { return o.language == LutLanguage::cuda; }
   int bits() const { return f.bits(); }
@@ -300,7 +405,10 @@ struct Emitter {
                   props.min_normal ? hexv(*props.min_normal) : "-", props.min_subnormal ? hexv(*props.min_subnormal) : "none",
                   props.distinct_finite, props.nan_codes, props.infinity_codes, props.unused_codes,
                   props.negative_zero ? chx(*props.negative_zero) : "none"));
-    if (dec.exact)
+    if (idec)
+      L(fmt::format("Decode: scaled integers, value = k * 2^{} with k an {}int{}_t, exact for every finite code.",
+                    idec->exponent, idec->is_signed ? "" : "u", idec->type_bits));
+    else if (dec.exact)
       L(fmt::format("Decode: {} bit patterns, exact for every code (NaN and unused codes: the quiet NaN {}).",
                     dec_name(), dec.type == DecodeType::f32 ? "0x7fc00000" : dec.type == DecodeType::f16 ? "0x7e00" : "0x7fc0"));
     else
@@ -324,6 +432,8 @@ struct Emitter {
     L("  Thresholds are the smallest float32 that goes to the upper side (ties folded in), stored as order keys:");
     L("  key(x) = bits(x) for x >= 0, -(bits(x) & 0x7fffffff) for x < 0 (-0 and +0 share key 0). The encoder uses");
     L("  integer comparisons only (a fixed-depth branch-free search), so flush-to-zero modes do not change it.");
+    if (sr)
+      L(fmt::format("Stochastic: {}_encode_stochastic(x, random_word), the library's Rounding::stochastic (comment below).", P));
     if (scaled)
       L(fmt::format("Block-scaled: {}: blocks of {} elements sharing one {} scale ({}, {} bits); the element format "
                     "is the one above.",
@@ -358,11 +468,115 @@ struct Emitter {
   }
 
   std::size_t table_bytes() const {
-    return count() * (dec.type == DecodeType::f32 ? 4 : 2) + padded() * 4 + (plan.thresholds.size() + 1) * (bits() <= 8 ? 1 : 2);
+    std::size_t b = count() * (idec ? idec->type_bits / 8 + 1 : (dec.type == DecodeType::f32 ? 4 : 2)) + padded() * 4 +
+                    (plan.thresholds.size() + 1) * (bits() <= 8 ? 1 : 2);
+    if (sr) b += sr->values.size() * (8 + (bits() <= 8 ? 1 : 2));
+    return b;
   }
   const char* table_space() const { return table_bytes() <= 60 * 1024 ? "__constant__" : "__device__ const"; }
 
+  void scaled_int_part() {
+    const ScaledIntTable& t = *idec;
+    const std::string kt = ty(fmt::format("{}int{}_t", t.is_signed ? "" : "u", t.type_bits));
+    const std::string name = P + "_decode_k";
+    const bool all_numbers = std::all_of(t.number.begin(), t.number.end(), [](bool b) { return b; });
+    out += fmt::format("/* Scaled-integer decode: value(code) = {}_decode_k_of(code) * 2^{}_DECODE_EXPONENT, exact for every\n", P, M);
+    out += fmt::format(" * finite code.{} */\n", all_numbers ? ""
+                       : fmt::format(" NaN, infinity and unused codes hold k = 0; {}_decode_is_number_of(code) is 0 for them.", P));
+    out += fmt::format("#define {}_DECODE_EXPONENT ({})\n", M, t.exponent);
+    table(kt, name, count(), [&](std::size_t i) {
+      const Code c = i;
+      const CodeClass k = f.classify(c);
+      std::string cm = fmt::format("{} {}", chx(c), to_string(k));
+      if (t.number[i]) cm += " " + hexv(f.decode(c));
+      return std::pair{fmt::format("{}", t.k[i]), cm};
+    }, fmt::format("code -> k (value = k * 2^{})", t.exponent));
+    out += fmt::format("{} {} {}_decode_k_of({} code) {{ return {}[code & 0x{:x}u]; }}\n", fn(), kt, P, ty("uint32_t"), tab(name),
+                       count() - 1);
+    if (!all_numbers) {
+      const std::string nn = P + "_decode_is_number";
+      table(ty("uint8_t"), nn, count(), [&](std::size_t i) {
+        return std::pair{std::string(t.number[i] ? "1" : "0"), fmt::format("{} {}", chx(i), to_string(f.classify(i)))};
+      }, "code -> 1 for a finite value");
+      out += fmt::format("{} {} {}_decode_is_number_of({} code) {{ return {}[code & 0x{:x}u]; }}\n", fn(), ty("uint8_t"), P,
+                         ty("uint32_t"), tab(nn), count() - 1);
+    }
+  }
+
+  void stochastic_part() {
+    const LutStochasticPlan& s = *sr;
+    const std::size_t n = s.values.size();
+    const std::string vname = P + "_sr_values", cname = P + "_sr_codes", u32 = ty("uint32_t");
+    auto lit = [](double v) { return v < 0 ? "(" + hexv(v) + ")" : hexv(v); };
+    const double fmax = static_cast<double>(FLT_MAX);
+    out += "/*\n";
+    out += fmt::format(" * Stochastic rounding: {}_encode_stochastic(x, r) returns, for every float32 x and 32-bit word r, the\n", P);
+    out += fmt::format(" * code of lobit's ElementFormat::encode(double(x), Rounding::stochastic, Overflow::{}, r)\n",
+                       to_string(f.resolve(o.overflow)));
+    out += " * (README: Rounding, ties and overflow). Between neighbouring values a (nearer zero) and b, with\n";
+    out += " * t = floor(2^32 * (|x| - |a|) / (|b| - |a|)) computed in binary64 and clamped to [0, 2^32 - 1], x goes\n";
+    out += " * to b exactly when t + r >= 2^32 (for minifloats and integers this t is the remainder below the last\n";
+    out += " * kept bit truncated to 32 bits, the library's integer definition). A cell spanning zero (a codebook\n";
+    out += " * without 0) goes upward when floor(2^32 * (x - lo) / (hi - lo)) + r >= 2^32. Values are exact;\n";
+    out += " * inputs past +-max round toward the virtual neighbour beyond it and overflow as the library does.\n";
+    out += " * Needs IEEE binary64 arithmetic without flush-to-zero (x87 extended precision would differ; GPUs: fine).\n";
+    out += fmt::format(" * NaN -> {}{}, +inf -> {}, -inf -> {}.\n */\n", chx(s.nan_result),
+                       s.nan_from_library ? "" : " (the code +0.0 encodes to under nearest-even; the library refuses NaN)", chx(s.pos_inf_result),
+                       chx(s.neg_inf_result));
+    table("double", vname, n, [&](std::size_t i) { return std::pair{hexv(s.values[i]), fmt::format("[{}] {}", i, decv(s.values[i]))}; },
+          "sorted finite values (binary64, exact)");
+    table(code_t(), cname, n, [&](std::size_t i) { return std::pair{chx(s.codes[i]), fmt::format("[{}]", i)}; },
+          "code of each value");
+    out += fmt::format("/* floor(2^32 * (ax - an) / (af - an)) clamped to [0, 2^32 - 1], for an <= ax <= af. */\n");
+    out += fmt::format("{} {} {}_sr_fraction(double ax, double an, double af) {{\n", fn(), u32, P);
+    out += "  const double t = ((ax - an) / (af - an)) * 4294967296.0;  /* exact scaling by 2^32 */\n";
+    out += fmt::format("  if (!(t > 0.0)) return 0u;\n  if (t >= 4294967295.0) return 0xffffffffu;\n  return ({})t;  /* truncation: floor for t > 0 */\n}}\n", u32);
+    out += fmt::format("/* t + r >= 2^32 */\n{} int {}_sr_away({} t, {} r) {{ return r > 0xffffffffu - t; }}\n", fn(), P, u32, u32);
+    out += fmt::format("{} {} {}_encode_stochastic(float x, {} r) {{\n", fn(), code_t(), P, u32);
+    out += fmt::format("  const {} b = {}_float_bits(x);\n", u32, P);
+    out += "  const double xd = (double)x;\n  const double ax = xd < 0.0 ? -xd : xd;\n";
+    out += fmt::format("  {} lo = 0u, hi = {}u, k;\n", u32, n - 1);
+    out += fmt::format("  if ((b & 0x7fffffffu) > 0x7f800000u) return {};  /* NaN */\n", chx(s.nan_result));
+    out += fmt::format("  if (b == 0x7f800000u) return {};  /* +inf */\n", chx(s.pos_inf_result));
+    out += fmt::format("  if (b == 0xff800000u) return {};  /* -inf */\n", chx(s.neg_inf_result));
+    const double top = s.values.back(), bot = s.values.front();
+    if (s.upper_virtual && s.upper_overflow_code == s.codes.back())
+      out += fmt::format("  if (xd > {}) return {};  /* past max: every overflow saturates */\n", lit(top), chx(s.codes.back()));
+    else if (s.upper_virtual)
+      out += fmt::format("  if (xd > {}) {{  /* past max: toward the virtual neighbour {} */\n    if (xd >= {}) return {};\n"
+                         "    return {}_sr_away({}_sr_fraction(ax, {}, {}), r) ? {} : {};\n  }}\n",
+                         lit(top), hexv(*s.upper_virtual), lit(*s.upper_virtual), chx(s.upper_overflow_code), P, P,
+                         hexv(std::fabs(top)), hexv(std::fabs(*s.upper_virtual)), chx(s.upper_overflow_code), chx(s.codes.back()));
+    else if (top < fmax)
+      out += fmt::format("  if (xd > {}) return {};  /* past max: no neighbour beyond, saturate */\n", lit(top), chx(s.codes.back()));
+    if (s.lower_virtual && s.lower_overflow_code == s.codes.front())
+      out += fmt::format("  if (xd < {}) return {};  /* past -max: every overflow saturates */\n", lit(bot), chx(s.codes.front()));
+    else if (s.lower_virtual)
+      out += fmt::format("  if (xd < {}) {{  /* past -max: toward the virtual neighbour {} */\n    if (xd <= {}) return {};\n"
+                         "    return {}_sr_away({}_sr_fraction(ax, {}, {}), r) ? {} : {};\n  }}\n",
+                         lit(bot), hexv(*s.lower_virtual), lit(*s.lower_virtual), chx(s.lower_overflow_code), P, P,
+                         hexv(std::fabs(bot)), hexv(std::fabs(*s.lower_virtual)), chx(s.lower_overflow_code), chx(s.codes.front()));
+    else if (bot > -fmax)
+      out += fmt::format("  if (xd < {}) return {};  /* below the lowest value: saturate */\n", lit(bot), chx(s.codes.front()));
+    const std::string V = tab(vname), C = tab(cname);
+    out += fmt::format("  while (hi - lo > 1u) {{  /* {}[lo] <= xd <= {}[hi] */\n", vname, vname);
+    out += fmt::format("    const {} mid = (lo + hi) >> 1;\n    if ({}[mid] <= xd) lo = mid;\n    else hi = mid;\n  }}\n", u32, V);
+    out += fmt::format("  if ({}[lo] == xd) k = lo;\n  else if ({}[hi] == xd) k = hi;\n", V, V);
+    out += fmt::format("  else if ({}[lo] >= 0.0) k = {}_sr_away({}_sr_fraction(ax, {}[lo], {}[hi]), r) ? hi : lo;\n", V, P, P, V, V);
+    out += fmt::format("  else if ({}[hi] <= 0.0) k = {}_sr_away({}_sr_fraction(ax, -{}[hi], -{}[lo]), r) ? lo : hi;\n", V, P, P, V, V);
+    out += fmt::format("  else k = {}_sr_away({}_sr_fraction(xd, {}[lo], {}[hi]), r) ? hi : lo;  /* spans zero: by value, upward */\n",
+                       P, P, V, V);
+    if (s.zero_index && s.negative_zero_code)
+      out += fmt::format("  if (k == {}u && (b >> 31)) return ({}){};  /* negative inputs that round to zero */\n", *s.zero_index,
+                         code_t(), chx(*s.negative_zero_code));
+    out += fmt::format("  return {}[k];\n}}\n", C);
+  }
+
   void decode_part() {
+    if (idec) {
+      scaled_int_part();
+      return;
+    }
     const bool f32 = dec.type == DecodeType::f32;
     const std::string et = ty(f32 ? "uint32_t" : "uint16_t");
     const std::string name = P + "_decode_" + dec_name() + "_bits";
@@ -534,6 +748,7 @@ struct Emitter {
     bitcast_part();
     decode_part();
     encode_part();
+    if (sr) stochastic_part();
     if (has_pack()) pack_part();
     if (scaled) block_part();
     if (!c_lang()) out += "}  // namespace " + o.cpp_namespace + "\n";
@@ -677,6 +892,9 @@ std::string emit_block_lut(const ScaledFormat& sf, const LutOptions& o) {
   if (!decode_table(*sf.element, DecodeType::f32).exact || !decode_table(*sf.scale, DecodeType::f32).exact)
     throw usage_error("the element or scale values are not all float32 numbers; the float32 dequantize would round", where,
                       "use formats whose values float32 holds");
+  if (o.decode_type == DecodeType::scaled_int)
+    throw usage_error("block layouts dequantize in float32", "--decode-type int",
+                      "drop --decode-type, or generate the element format alone");
   LutOptions eo = o;
   eo.decode_type = DecodeType::f32;  // dequantize works in float32
   if (eo.title.empty()) eo.title = sf.text;
@@ -690,8 +908,16 @@ std::string emit_lut_impl(const ElementFormat& f, const LutOptions& o, const Sca
   if ((o.language == LutLanguage::cpp || o.language == LutLanguage::cuda) && !valid_namespace(o.cpp_namespace))
     throw usage_error(fmt::format("'{}' is not a C++ namespace name", o.cpp_namespace), "--namespace",
                       "use identifiers joined by ::, e.g. kernels::fp8");
+  if (o.decode_type == DecodeType::scaled_int && (o.language == LutLanguage::json || o.language == LutLanguage::csv))
+    throw usage_error("the scaled-integer decode table is generated for c, cpp and cuda", "--decode-type int",
+                      "json and csv already give each code's exact value; use --lang c, cpp or cuda");
+  if (o.stochastic && (o.language == LutLanguage::json || o.language == LutLanguage::csv))
+    throw usage_error("the stochastic encoder is code: it is generated for c, cpp and cuda", "--stochastic",
+                      "use --lang c, cpp or cuda");
   Emitter e{f, o, plan_encode(f, o.overflow), decode_table(f, o.decode_type), properties(f), {}, {}, {}, {}};
-  if (!e.dec.exact && !o.allow_inexact)
+  if (o.decode_type == DecodeType::scaled_int && !scaled) e.idec = scaled_int_table(f);
+  if (o.stochastic) e.sr = plan_stochastic(f, o.overflow);
+  if (!e.dec.exact && !o.allow_inexact && !e.idec)
     throw usage_error(fmt::format("{} cannot hold every value of this format exactly ({} at code {})",
                                   to_string(o.decode_type),
                                   std::isinf(e.dec.max_abs_error) ? std::string("a value past its range")
@@ -774,9 +1000,48 @@ ProductTable product_table(const ElementFormat& a, const ElementFormat& b) {
   return t;
 }
 
+namespace {
+
+// Data-only product tables: every entry with its codes, exact value, float32 bits and (integer form) k.
+std::string product_data(const ElementFormat& a, const ElementFormat& b, const ProductTable& t, const LutOptions& o) {
+  const std::size_t n = t.f32_bits.size();
+  auto value = [&](std::size_t i) { return static_cast<double>(f32_of(t.f32_bits[i])); };
+  std::string out;
+  if (o.language == LutLanguage::csv) {
+    out += "index,code_a,code_b,value,f32_bits,k\n";
+    for (std::size_t i = 0; i < n; ++i) {
+      const Code ca = i >> b.bits(), cb = i & ((Code{1} << b.bits()) - 1);
+      const double v = value(i);
+      out += fmt::format("{},{},{},{},0x{:08x},{}\n", i, code_hex(ca, a.bits()), code_hex(cb, b.bits()),
+                         std::isnan(v) ? "" : hexv(v), t.f32_bits[i], t.integer ? std::to_string(t.k[i]) : "");
+    }
+    return out;
+  }
+  auto q = [](const std::string& x) { return json_string(x); };
+  out += "{\n";
+  out += fmt::format("  \"generator\": {},\n", q(fmt::format("lobit {}", version())));
+  out += fmt::format("  \"command\": {},\n", q(o.command));
+  out += fmt::format("  \"kind\": \"product\",\n  \"format_a\": {},\n  \"format_b\": {},\n", q(a.spec()), q(b.spec()));
+  out += fmt::format("  \"bits_a\": {},\n  \"bits_b\": {},\n", a.bits(), b.bits());
+  out += fmt::format("  \"index\": {},\n", q(fmt::format("(code_a << {}) | code_b", b.bits())));
+  out += fmt::format("  \"integer\": {},\n", t.integer ? "true" : "false");
+  if (t.integer) out += fmt::format("  \"exponent\": {},\n  \"product_bits\": {},\n", t.exponent, t.product_bits);
+  out += "  \"entries\": [\n";
+  for (std::size_t i = 0; i < n; ++i) {
+    const Code ca = i >> b.bits(), cb = i & ((Code{1} << b.bits()) - 1);
+    const double v = value(i);
+    out += fmt::format("    {{\"index\": {}, \"code_a\": {}, \"code_b\": {}, \"value\": {}, \"f32_bits\": {}, \"k\": {}}}{}\n", i, ca,
+                       cb, std::isnan(v) ? "null" : q(hexv(v)), t.f32_bits[i], t.integer ? std::to_string(t.k[i]) : "null",
+                       i + 1 < n ? "," : "");
+  }
+  out += "  ]\n}\n";
+  return out;
+}
+
+}  // namespace
+
 std::string emit_product_lut(const ElementFormat& a, const ElementFormat& b, const LutOptions& o) {
-  if (o.language == LutLanguage::json || o.language == LutLanguage::csv)
-    throw usage_error("json and csv output is for element formats", "--product", "use --lang c, cpp or cuda");
+  if (o.language == LutLanguage::json || o.language == LutLanguage::csv) return product_data(a, b, product_table(a, b), o);
   if ((o.language == LutLanguage::cpp || o.language == LutLanguage::cuda) && !valid_namespace(o.cpp_namespace))
     throw usage_error(fmt::format("'{}' is not a C++ namespace name", o.cpp_namespace), "--namespace",
                       "use identifiers joined by ::, e.g. kernels::fp8");

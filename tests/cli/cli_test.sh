@@ -188,5 +188,25 @@ expect_exit 0 lut e2m1 --product int4 --lang cpp
 grep -q 'lobit_e2m1_x_int4_product_k_of' "$tmp/out" && ok || bad "lut --product: no integer table"
 expect_error lut e4m3 --product e2m1
 expect_error lut nf4 --product e2m1
+# lut --stochastic: the stochastic encoder is added (C, C++, CUDA; refused for data-only output).
+expect_exit 0 lut e2m1 --stochastic
+grep -q 'static inline uint8_t lobit_e2m1_encode_stochastic(float x, uint32_t r)' "$tmp/out" && ok || bad "lut --stochastic: no encoder"
+grep -q '^ \*   lobit lut e2m1 --lang c --decode-type f32 --stochastic$' "$tmp/out" && ok || bad "lut --stochastic: command not recorded"
+expect_exit 0 lut e2m1
+grep -q "encode_stochastic" "$tmp/out" && bad "lut without --stochastic emitted it" || ok
+expect_error lut e2m1 --stochastic --lang json
+# lut --decode-type int: e2m1's smallest step is 0.5 = 2^-1 (OCP MX v1.0, section 5.3.3), so E = -1 and k = 2 * value.
+expect_exit 0 lut e2m1 --decode-type int --lang cpp
+grep -q '#define LOBIT_E2M1_DECODE_EXPONENT (-1)' "$tmp/out" && ok || bad "lut --decode-type int: no exponent -1"
+grep -q 'inline constexpr std::int8_t lobit_e2m1_decode_k\[16\]' "$tmp/out" && ok || bad "lut --decode-type int: no int8 table"
+# e5m2 (OCP OFP8 v1.0): 57344 / 2^-16 = 3758096384 does not fit 32 bits.
+expect_error lut e5m2 --decode-type int
+expect_error lut e2m1 --decode-type int --lang csv
+# lut --product as data: e2m1's 6 (code 0x7) times int4's 7 (code 0x7) is 42 (OCP MX v1.0 section 5.3.3; two's complement int4).
+expect_exit 0 lut e2m1 --product int4 --lang json
+py "len(j['entries']) == 256 and float.fromhex(j['entries'][(7 << 4) | 7]['value']) == 42 and j['entries'][119]['k'] * 2.0 ** j['exponent'] == 42"
+expect_exit 0 lut e2m1 --product int4 --lang csv
+[ "$(wc -l <"$tmp/out")" -eq 257 ] && grep -q '^119,0x7,0x7,0x1.5p+5,' "$tmp/out" && ok || bad "lut --product --lang csv: rows"
+expect_error lut e2m1 --product int4 --stochastic
 echo "cli: $pass passed, $fail failed"
 [ "$fail" -eq 0 ]

@@ -29,6 +29,7 @@ std::vector<LutCase> cuda_cases() {
     c.opt.command = std::string("lut_cuda_test ") + sp;
     c.opt.pack = (i % 2) ? emit::PackOrder::hi_first : emit::PackOrder::lo_first;
     c.opt.overflow = (i % 3 == 0) ? Overflow::special : Overflow::format_default;
+    c.opt.stochastic = (i % 2) == 0;  // device compile of the stochastic encoder (host side: lut_stochastic_test)
     ++i;
     cases.push_back(std::move(c));
   }
@@ -89,6 +90,7 @@ TEST_CASE("cuda header compiles with nvcc, and its host side matches the library
     const std::string P = "lobit_cuda_test::lobit_" + c.opt.stem;
     cu += fmt::format("  codes[i] = {}_encode(x[i]);\n", P);
     if (emit::plan_encode(*c.f, c.opt.overflow).thresholds.size() <= 64) cu += fmt::format("  codes[i] ^= {}_encode_by_count(x[i]);\n", P);
+    if (c.opt.stochastic) cu += fmt::format("  codes[i] ^= {}_encode_stochastic(x[i], i * 2654435761u);\n", P);
     cu += fmt::format("  back[i] = {}_decode_f32(codes[i]);\n", P);
     const int b = c.f->bits();
     if (b == 2 || b == 4 || b == 6)

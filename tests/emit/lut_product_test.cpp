@@ -3,6 +3,9 @@
 // every entry is decode_a * decode_b exactly, and k * 2^exponent equals it.
 #include <doctest/doctest.h>
 
+#include <nlohmann/json.hpp>
+#include <sstream>
+
 #include "lobit/error.hpp"
 #include "lut_harness.hpp"
 
@@ -118,5 +121,51 @@ TEST_CASE("product tables refuse wide or inexact pairs") {
   CHECK_THROWS_AS(emit::emit_product_lut(*parse_element("e4m3"), *parse_element("e2m1"), o), Error);  // 8 bits
   CHECK_THROWS_AS(emit::emit_product_lut(*parse_element("nf4"), *parse_element("e2m1"), o), Error);   // not float32
   o.language = emit::LutLanguage::json;
-  CHECK_THROWS_AS(emit::emit_product_lut(*parse_element("e2m1"), *parse_element("e2m1"), o), Error);
+  CHECK_THROWS_AS(emit::emit_product_lut(*parse_element("e4m3"), *parse_element("e2m1"), o), Error);
+}
+
+TEST_CASE("product tables as json and csv carry every exact product") {
+  for (auto [sa, sb] : pairs) {
+    const auto a = parse_element(sa), b = parse_element(sb);
+    INFO(sa, " x ", sb);
+    emit::LutOptions o;
+    o.language = emit::LutLanguage::json;
+    o.command = "lut_product_test";
+    const std::string js = emit::emit_product_lut(*a, *b, o);
+    CHECK(js == emit::emit_product_lut(*a, *b, o));
+    const auto j = nlohmann::json::parse(js);
+    o.language = emit::LutLanguage::csv;
+    std::istringstream csv(emit::emit_product_lut(*a, *b, o));
+    std::string line;
+    std::getline(csv, line);
+    CHECK(line == "index,code_a,code_b,value,f32_bits,k");
+    const Code na = Code{1} << a->bits(), nb = Code{1} << b->bits();
+    REQUIRE(j["entries"].size() == na * nb);
+    const bool integer = j["integer"].get<bool>();
+    const int e = integer ? j["exponent"].get<int>() : 0;
+    std::size_t bad = 0;
+    std::string first;
+    for (Code ca = 0; ca < na; ++ca)
+      for (Code cb = 0; cb < nb; ++cb) {
+        const std::size_t i = (ca << b->bits()) | cb;
+        const auto& en = j["entries"][i];
+        const double want = a->decode(ca) * b->decode(cb);  // the library's values; binary64 holds these products
+        const double got = en["value"].is_null() ? NAN : std::strtod(en["value"].get<std::string>().c_str(), nullptr);
+        bool good = en["index"] == i && en["code_a"] == ca && en["code_b"] == cb && same_value(got, want) &&
+                    same_value(static_cast<double>(std::bit_cast<float>(en["f32_bits"].get<std::uint32_t>())), want);
+        if (integer) good = good && std::ldexp(static_cast<double>(en["k"].get<std::int64_t>()), e) == want;
+        // csv row: index,code_a,code_b,value,f32_bits,k
+        std::getline(csv, line);
+        std::vector<std::string> col;
+        std::stringstream ls(line);
+        for (std::string c; std::getline(ls, c, ',');) col.push_back(c);
+        if (col.size() == 5) col.push_back("");
+        good = good && col.size() == 6 && std::stoul(col[0]) == i &&
+               same_value(col[3].empty() ? NAN : std::strtod(col[3].c_str(), nullptr), want) &&
+               (!integer || std::ldexp(static_cast<double>(std::stoll(col[5])), e) == want);
+        if (!good && !bad++) first = fmt::format("entry {}: json {} csv {} want {}", i, en.dump(), line, want);
+      }
+    CHECK_MESSAGE(bad == 0, first);
+    CHECK(!std::getline(csv, line));
+  }
 }

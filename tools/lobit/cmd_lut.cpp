@@ -15,12 +15,17 @@ void add_lut_command(CLI::App& app) {
                                         "JSON, CSV)");
   struct Opts {
     std::string spec, lang = "c", decode_type = "f32", ns = "lobit_gen", pack, out, overflow = "default", name, product;
-    bool allow_inexact = false;
+    bool allow_inexact = false, stochastic = false;
   };
   auto o = std::make_shared<Opts>();
   cmd->add_option("FORMAT", o->spec, "Element format of at most 16 bits, or a block format ELEMENT@K:SCALE (e.g. mxfp4)")->required();
   cmd->add_option("--lang", o->lang, "c (C99 header), cpp (C++17), cuda, json or csv (default c)");
-  cmd->add_option("--decode-type", o->decode_type, "Decode table element: f32 (default), f16 or bf16");
+  cmd->add_option("--decode-type", o->decode_type,
+                  "Decode table element: f32 (default), f16, bf16, or int (k and one exponent E, value = k * 2^E; "
+                  "refused where no 8/16/32-bit k exists)");
+  cmd->add_flag("--stochastic", o->stochastic,
+                "Also emit lobit_NAME_encode_stochastic(float x, uint32_t random_word): the library's stochastic "
+                "rounding bit for bit (c, cpp, cuda)");
   cmd->add_flag("--allow-inexact", o->allow_inexact, "Emit a decode table whose type rounds some values (error stated)");
   cmd->add_option("--namespace", o->ns, "C++ / CUDA namespace (default lobit_gen)");
   cmd->add_option("--pack", o->pack, "Bit order of packed 2-, 4- and 6-bit codes: lo-first (default) or hi-first");
@@ -34,7 +39,7 @@ void add_lut_command(CLI::App& app) {
     if (!lang) throw usage_error(fmt::format("unknown language '{}'", o->lang), "--lang", "use c, cpp, cuda, json or csv");
     lo.language = *lang;
     const auto dt = emit::parse_decode_type(o->decode_type);
-    if (!dt) throw usage_error(fmt::format("unknown element type '{}'", o->decode_type), "--decode-type", "use f32, f16 or bf16");
+    if (!dt) throw usage_error(fmt::format("unknown element type '{}'", o->decode_type), "--decode-type", "use f32, f16, bf16 or int");
     lo.decode_type = *dt;
     const auto ov = parse_overflow(o->overflow);
     if (!ov) throw usage_error(fmt::format("unknown overflow policy '{}'", o->overflow), "--overflow",
@@ -58,6 +63,7 @@ void add_lut_command(CLI::App& app) {
       lo.pack = *p;
     }
     lo.allow_inexact = o->allow_inexact;
+    lo.stochastic = o->stochastic;
     lo.cpp_namespace = o->ns;
     lo.title = o->spec;
     lo.stem = o->name;
@@ -66,6 +72,7 @@ void add_lut_command(CLI::App& app) {
     std::string command = "lobit lut " + o->spec + " --lang " + std::string(emit::to_string(lo.language)) +
                           " --decode-type " + std::string(emit::to_string(lo.decode_type));
     if (lo.allow_inexact) command += " --allow-inexact";
+    if (lo.stochastic) command += " --stochastic";
     if (lo.language == emit::LutLanguage::cpp || lo.language == emit::LutLanguage::cuda) command += " --namespace " + o->ns;
     if (!o->pack.empty()) command += " --pack " + o->pack;
     if (o->overflow != "default") command += " --overflow " + o->overflow;
@@ -75,6 +82,9 @@ void add_lut_command(CLI::App& app) {
     std::string text;
     if (!o->product.empty()) {
       if (block) throw usage_error("--product takes element formats", "--product", "give the element formats, e.g. e2m1");
+      if (lo.stochastic || lo.decode_type == emit::DecodeType::scaled_int)
+        throw usage_error("a product table has no encoder and its own integer form", "--product",
+                          "drop --stochastic and --decode-type int (the product's k table is always emitted where it exists)");
       const auto fb = parse_element(o->product);
       lo.title = o->spec + "_x_" + o->product;
       text = emit::emit_product_lut(*f, *fb, lo);

@@ -30,7 +30,7 @@ struct ScaledFormat;
 namespace lobit::emit {
 
 enum class LutLanguage { c, cpp, cuda, json, csv };
-enum class DecodeType { f32, f16, bf16 };
+enum class DecodeType { f32, f16, bf16, scaled_int };  // scaled_int: value = k * 2^E (C, C++, CUDA)
 enum class PackOrder { lo_first, hi_first };
 
 std::optional<LutLanguage> parse_lut_language(std::string_view name);
@@ -47,6 +47,7 @@ struct LutOptions {
   std::string cpp_namespace = "lobit_gen";  // cpp and cuda; may be nested (a::b)
   PackOrder pack = PackOrder::lo_first;   // 2-, 4- and 6-bit codes
   Overflow overflow = Overflow::format_default;
+  bool stochastic = false;  // also emit lobit_<stem>_encode_stochastic(x, random_word) (C, C++, CUDA)
   std::string stem;     // identifiers are lobit_<stem>_...; empty: derived from `title`
   std::string title;    // how the user named the format (empty: its canonical spec)
   std::string command;  // the command recorded in the header comment
@@ -98,6 +99,37 @@ struct DecodeTable {
 };
 DecodeTable decode_table(const ElementFormat& f, DecodeType type);
 
+// Scaled-integer decode (--decode-type int): every finite value is k * 2^exponent
+// with integer k in the narrowest of int8/16/32 (uint8/16/32 where no value is
+// negative). NaN, infinity and unused codes hold k = 0 and number = false.
+// Throws lobit::Error (usage) where no such table exists.
+struct ScaledIntTable {
+  int exponent = 0;
+  int type_bits = 8;
+  bool is_signed = true;
+  std::vector<std::int64_t> k;  // per code
+  std::vector<bool> number;     // per code: a finite value
+};
+ScaledIntTable scaled_int_table(const ElementFormat& f);
+
+// What the stochastic encoder needs (the library's ValueTable definition, which the
+// arithmetic encoders of minifloats and integers agree with bit for bit):
+// values[i] sorted with their codes; beyond +-max the virtual neighbours the
+// format defines, and the codes an overflow gives (library: encode of the virtual
+// neighbour itself under stochastic rounding).
+struct LutStochasticPlan {
+  std::vector<double> values;
+  std::vector<Code> codes;
+  std::optional<double> upper_virtual, lower_virtual;  // only where a float32 can lie past that end
+  Code upper_overflow_code = 0, lower_overflow_code = 0;
+  std::optional<std::size_t> zero_index;
+  std::optional<Code> negative_zero_code;
+  Code nan_result = 0;
+  bool nan_from_library = false;
+  Code pos_inf_result = 0, neg_inf_result = 0;
+};
+LutStochasticPlan plan_stochastic(const ElementFormat& f, Overflow overflow);
+
 // The generated text. Throws lobit::Error (usage) for a format of more than 16
 // bits, an inexact decode type without allow_inexact, a bad namespace.
 std::string emit_lut(const ElementFormat& f, const LutOptions& options);
@@ -113,7 +145,8 @@ std::string emit_block_lut(const ScaledFormat& sf, const LutOptions& options);
 // kernels): entry (ca << bits(b)) | cb is decode_a(ca) * decode_b(cb), exact, as
 // float32 bits (refused where float32 cannot hold a product), and, where every
 // product is finite, as integers k with product = k * 2^exponent plus the
-// accumulator width a sum of N of them needs. C, C++ and CUDA.
+// accumulator width a sum of N of them needs. C, C++ and CUDA; json and csv give the
+// same entries as data (index, codes, exact value, float32 bits, k).
 struct ProductTable {
   int bits_a = 0, bits_b = 0;
   std::vector<std::uint32_t> f32_bits;  // 2^(bits_a + bits_b) entries
