@@ -34,7 +34,7 @@ grep -Eq '^lobit [0-9]+\.[0-9]+\.[0-9]+ \(git [0-9a-f]+(-dirty)?|unknown\)' "$tm
 
 expect_exit 0 formats
 for p in e4m3 e5m2 e3m2 e2m3 e2m1 e8m0 fp16 bf16 fp32 int2 int8 uint2 uint8 nf4; do
-  grep -q "^$p " "$tmp/out" && ok || bad "formats does not list $p"
+  grep -Eq "^  $p +[0-9]" "$tmp/out" && ok || bad "formats does not list $p"
 done
 expect_exit 0 formats --json
 py "len(j) >= 28 and all('summary' in p and 'source' in p for p in j)"

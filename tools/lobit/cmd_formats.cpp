@@ -32,12 +32,19 @@ void add_formats_command(CLI::App& app) {
       print_json(arr);
       return;
     }
-    std::size_t w = 0;
-    for (const auto& p : presets()) w = std::max(w, p.name.size());
-    for (const auto& p : presets()) {
-      std::string aka;
-      if (!p.aliases.empty()) aka = fmt::format("  (also {})", fmt::join(p.aliases, ", "));
-      fmt::print("{:<{}}  {}{}\n", p.name, w, p.summary, aka);
+    // Element formats first, then block-scaled compositions; each list aligned on its own.
+    for (const bool scaled : {false, true}) {
+      std::size_t w = 0;
+      for (const auto& p : presets())
+        if (p.scaled() == scaled) w = std::max(w, p.name.size());
+      fmt::print("{}\n", scaled ? "\nblock-scaled formats (bits per element, scales included)" : "element formats (bits)");
+      for (const auto& p : presets()) {
+        if (p.scaled() != scaled) continue;
+        const double bits = scaled ? parse_scaled(p.name)->nominal_bits_per_element() : parse_element(p.name)->bits();
+        std::string aka;
+        if (!p.aliases.empty()) aka = fmt::format("  (also {})", fmt::join(p.aliases, ", "));
+        fmt::print("  {:<{}}  {:>7}  {}{}\n", p.name, w, fmt::format("{}", bits), p.summary, aka);
+      }
     }
   });
 }
