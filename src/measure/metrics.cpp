@@ -65,15 +65,18 @@ void ErrorAccumulator::add_unit(double ue, std::uint64_t un) {
   }
 }
 
+void ErrorAccumulator::count_group(const GroupScale& sc) {
+  // Tensor and column groups arrive in several visits: the caller counts those.
+  if (f_.granularity == Granularity::tensor || f_.granularity == Granularity::col) return;
+  ++s_.groups;
+  s_.saturated_groups += sc.saturated;
+  s_.underflow_groups += sc.underflow;
+  s_.nan_groups += sc.nan;
+}
+
 void ErrorAccumulator::add(const GroupView& g) {
   const GroupScale& sc = *g.scale;
-  // Tensor and column groups arrive in several visits: the caller counts those.
-  if (f_.granularity != Granularity::tensor && f_.granularity != Granularity::col) {
-    ++s_.groups;
-    s_.saturated_groups += sc.saturated;
-    s_.underflow_groups += sc.underflow;
-    s_.nan_groups += sc.nan;
-  }
+  count_group(sc);
   double ue = 0;
   std::uint64_t un = 0;
   for (std::size_t i = 0; i < g.n; ++i) {
@@ -113,12 +116,7 @@ void ErrorAccumulator::add(const GroupView& g) {
 
 void ErrorAccumulator::add_fused(const GroupView& g) {
   const GroupScale& sc = *g.scale;
-  if (f_.granularity != Granularity::tensor && f_.granularity != Granularity::col) {
-    ++s_.groups;
-    s_.saturated_groups += sc.saturated;
-    s_.underflow_groups += sc.underflow;
-    s_.nan_groups += sc.nan;
-  }
+  count_group(sc);
   if (sc.nan) {
     // As in add(): NaN/inf inputs counted, the group's finite inputs left out.
     for (std::size_t i = 0; i < g.n; ++i) {

@@ -39,6 +39,11 @@ GroupSummary summarize(const float* x, std::size_t n, std::size_t stride) {
   // The vector kernel gives the same summary where it applies (finite inputs,
   // nonzero min and max; see fused_kernels.hpp).
   if (stride == 1 && n >= 8 && fused::have_avx512() && fused::summarize_avx512(x, n, s.amax, s.min, s.max)) return s;
+  return summarize_scalar(x, n, stride);
+}
+
+GroupSummary summarize_scalar(const float* x, std::size_t n, std::size_t stride) {
+  GroupSummary s;
   bool first = true;
   for (std::size_t i = 0; i < n; ++i) {
     const double v = x[i * stride];

@@ -19,6 +19,7 @@
 #include <vector>
 
 #include "lobit/emit/lut.hpp"
+#include "lobit/error.hpp"
 #include "lobit/format/spec.hpp"
 #include "lobit/format/value_table.hpp"
 #include "test_util.hpp"
@@ -292,6 +293,51 @@ inline void check_case(const LutCase& c, const WrapperEntry& e, Tally& tally, st
       tally.pack_checked += len;
     }
   }
+}
+
+// The formats the generated-code tests sweep: every element preset of up to 16
+// bits; minifloats of exp 1..5 x man 0..3, both signs, subnormals on/off, the
+// special layouts in turn; ranges at the edges of float32 (values below its
+// subnormals, above its max); integers, fixed point, power-of-two formats; and
+// codebooks without a zero (a tie at 0), with values float32 cannot hold, or
+// beyond float32.
+inline std::vector<std::string> element_sweep_specs() {
+  std::vector<std::string> s;
+  for (const auto& p : presets()) {
+    if (p.scaled()) continue;
+    if (parse_element(p.name)->bits() > 16) continue;
+    s.push_back(p.name);
+  }
+  const char* specials[] = {"ieee", "top-nan", "negzero-nan", "none"};
+  int k = 0;
+  for (int e = 1; e <= 5; ++e)
+    for (int m = 0; m <= 3; ++m)
+      for (int sign = 0; sign < 2; ++sign)
+        for (int sub = 0; sub < 2; ++sub) {
+          const std::string sp = fmt::format("float+exp={}+man={}+sign={}+subnormals={}+special={}", e, m,
+                                             sign ? "yes" : "no", sub ? "yes" : "no", specials[(k++) % 4]);
+          try {
+            parse_element(sp);
+            s.push_back(sp);
+          } catch (const Error&) {
+            // impossible combination (e.g. no finite value left): the parser's business
+          }
+        }
+  for (const char* sp : {"float+exp=5+man=2+bias=160+special=ieee", "float+exp=5+man=3+bias=-120+special=none",
+                         "float+exp=6+man=5+special=ieee", "float+exp=4+man=8+special=top-nan", "bf16+subnormals=no",
+                         "float+exp=8+man=7+bias=100+special=ieee", "float+exp=3+man=0+special=none"})
+    s.push_back(sp);
+  for (int b : {2, 3, 5, 6, 9, 12})
+    for (const char* var : {"", "+range=symmetric", "+signed=no"}) s.push_back(fmt::format("int+bits={}{}", b, var));
+  for (const char* sp : {"int+bits=8+frac=5", "int+bits=6+frac=20+signed=no"}) s.push_back(sp);
+  for (const char* sp : {"pow2+exp=3+bias=3", "pow2+exp=4+bias=7+zero=no", "pow2+exp=5+bias=15+sign=no+nan=yes"})
+    s.push_back(sp);
+  for (const char* sp : {"codebook+values=-1/1", "codebook+values=-3/-1/1/3", "codebook+values=-0.3/0.1/0.7",
+                         "codebook+values=-1e300/-1e-300/0/1e-300/1e300", "codebook+values=1/2/3", "codebook+values=-5/-2",
+                         "codebook+values=0/1.000000059604644775390625/1.000000178813934326171875/2",
+                         "normal-quantile+bits=3"})
+    s.push_back(sp);
+  return s;
 }
 
 }  // namespace lobit::test

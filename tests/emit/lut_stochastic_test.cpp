@@ -20,44 +20,6 @@ using namespace lobit::test;
 
 namespace {
 
-std::vector<std::string> sr_specs() {
-  std::vector<std::string> s;
-  for (const auto& p : presets()) {
-    if (p.scaled()) continue;
-    if (parse_element(p.name)->bits() > 16) continue;
-    s.push_back(p.name);
-  }
-  const char* specials[] = {"ieee", "top-nan", "negzero-nan", "none"};
-  int k = 0;
-  for (int e = 1; e <= 5; ++e)
-    for (int m = 0; m <= 3; ++m)
-      for (int sign = 0; sign < 2; ++sign)
-        for (int sub = 0; sub < 2; ++sub) {
-          const std::string sp = fmt::format("float+exp={}+man={}+sign={}+subnormals={}+special={}", e, m,
-                                             sign ? "yes" : "no", sub ? "yes" : "no", specials[(k++) % 4]);
-          try {
-            parse_element(sp);
-            s.push_back(sp);
-          } catch (const Error&) {
-            // impossible combination: the parser's business
-          }
-        }
-  for (const char* sp : {"float+exp=5+man=2+bias=160+special=ieee", "float+exp=5+man=3+bias=-120+special=none",
-                         "float+exp=6+man=5+special=ieee", "float+exp=4+man=8+special=top-nan", "bf16+subnormals=no",
-                         "float+exp=8+man=7+bias=100+special=ieee", "float+exp=3+man=0+special=none"})
-    s.push_back(sp);
-  for (int b : {2, 3, 5, 6, 9, 12})
-    for (const char* var : {"", "+range=symmetric", "+signed=no"}) s.push_back(fmt::format("int+bits={}{}", b, var));
-  for (const char* sp : {"int+bits=8+frac=5", "int+bits=6+frac=20+signed=no"}) s.push_back(sp);
-  for (const char* sp : {"pow2+exp=3+bias=3", "pow2+exp=4+bias=7+zero=no", "pow2+exp=5+bias=15+sign=no+nan=yes"})
-    s.push_back(sp);
-  for (const char* sp : {"codebook+values=-1/1", "codebook+values=-3/-1/1/3", "codebook+values=-0.3/0.1/0.7",
-                         "codebook+values=-1e300/-1e-300/0/1e-300/1e300", "codebook+values=1/2/3", "codebook+values=-5/-2",
-                         "codebook+values=0/1.000000059604644775390625/1.000000178813934326171875/2",
-                         "normal-quantile+bits=3"})
-    s.push_back(sp);
-  return s;
-}
 
 struct SrCase {
   std::string spec;
@@ -227,11 +189,11 @@ Run run(emit::LutLanguage lang, const std::vector<std::string>& specs, std::size
 }  // namespace
 
 TEST_CASE("generated C99 stochastic encoders match the library bit for bit") {
-  const auto r = run(emit::LutLanguage::c, sr_specs(), std::size_t{1} << 20);
+  const auto r = run(emit::LutLanguage::c, element_sweep_specs(), std::size_t{1} << 20);
   CHECK(r.pairs >= r.formats * 1000000);
 }
 TEST_CASE("generated C++17 stochastic encoders match the library (other overflow policy)") {
-  run(emit::LutLanguage::cpp, sr_specs(), std::size_t{1} << 15);
+  run(emit::LutLanguage::cpp, element_sweep_specs(), std::size_t{1} << 15);
 }
 TEST_CASE("generated CUDA stochastic encoders, as host C++, match the library") {
   run(emit::LutLanguage::cuda, {"e2m1", "e4m3", "e5m2", "int4", "nf4", "e8m0", "fp16", "uint2"}, std::size_t{1} << 17);

@@ -66,6 +66,7 @@ class ErrorAccumulator {
 
  private:
   void add_unit(double ue, std::uint64_t un);  // one group: squared-error sum and count
+  void count_group(const GroupScale& sc);      // one group's scale flags
   void flush_lanes() const {
     if (lanes_.pending)
       fused::flush_lanes(lanes_, s_.sum_x, s_.sum_x2, s_.sum_rel, s_.top_err2, s_.max_abs_err, s_.max_abs_x,

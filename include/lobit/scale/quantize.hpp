@@ -38,6 +38,8 @@ struct GroupSummary {
   std::size_t nonfinite = 0;
 };
 GroupSummary summarize(const float* x, std::size_t n, std::size_t stride);
+// The same summary by the plain loop (summarize takes a vector kernel where it applies).
+GroupSummary summarize_scalar(const float* x, std::size_t n, std::size_t stride);
 
 class GroupQuantizer {
  public:
