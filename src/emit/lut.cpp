@@ -9,6 +9,7 @@
 #include <fmt/format.h>
 #include <limits>
 
+#include "lobit/detail/number_text.hpp"
 #include "lobit/error.hpp"
 #include "lobit/format/properties.hpp"
 #include "lobit/format/spec.hpp"
@@ -96,11 +97,7 @@ std::uint32_t up_from(const Threshold& t) {
   return f32_bits(f);
 }
 
-std::string hexv(double v) {
-  if (std::isnan(v)) return "nan";
-  if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
-  return fmt::format("{:a}", v);
-}
+std::string hexv(double v) { return detail::hex_text(v); }
 std::string decv(double v) {
   if (std::isnan(v)) return "nan";
   if (std::isinf(v)) return v > 0 ? "inf" : "-inf";

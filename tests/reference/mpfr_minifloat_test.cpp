@@ -46,6 +46,15 @@
 
 namespace {
 
+// The four IEEE rounding directions and the <cfenv> modes the hardware rounds with.
+const struct {
+  lobit::Rounding r;
+  int fe;
+} hardware_modes[] = {{lobit::Rounding::nearest_even, FE_TONEAREST},
+                      {lobit::Rounding::toward_zero, FE_TOWARDZERO},
+                      {lobit::Rounding::up, FE_UPWARD},
+                      {lobit::Rounding::down, FE_DOWNWARD}};
+
 using lobit::Code;
 using lobit::Minifloat;
 using lobit::MinifloatParams;
@@ -342,15 +351,8 @@ TEST_CASE("the MPFR reference reproduces the hardware's binary32 conversion in t
     xs.push_back(-std::nextafter(mid, 0.0));
     xs.push_back(std::nextafter(mid, INFINITY));
   }
-  const struct {
-    Rounding r;
-    int fe;
-  } modes[] = {{Rounding::nearest_even, FE_TONEAREST},
-               {Rounding::toward_zero, FE_TOWARDZERO},
-               {Rounding::up, FE_UPWARD},
-               {Rounding::down, FE_DOWNWARD}};
   Mpfr v(64);
-  for (const auto& mode : modes) {
+  for (const auto& mode : hardware_modes) {
     std::vector<double> hw(xs.size());
     REQUIRE(std::fesetround(mode.fe) == 0);
     for (std::size_t i = 0; i < xs.size(); ++i) {
@@ -386,15 +388,8 @@ TEST_CASE("the MPFR exponent convention reproduces binary64 subnormal and overfl
   std::mt19937_64 rng(seed + 1);
   std::uniform_real_distribution<double> half_log(-540.0, -505.0), top_log(506.0, 513.0);
   std::bernoulli_distribution coin(0.5);
-  const struct {
-    Rounding r;
-    int fe;
-  } modes[] = {{Rounding::nearest_even, FE_TONEAREST},
-               {Rounding::toward_zero, FE_TOWARDZERO},
-               {Rounding::up, FE_UPWARD},
-               {Rounding::down, FE_DOWNWARD}};
   Mpfr a(53), b(53), p(53);
-  for (const auto& mode : modes) {
+  for (const auto& mode : hardware_modes) {
     long mismatches = 0;
     std::string first;
     for (int i = 0; i < 100000; ++i) {

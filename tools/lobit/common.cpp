@@ -7,6 +7,7 @@
 #include <cstring>
 #include <fmt/format.h>
 
+#include "lobit/detail/number_text.hpp"
 #include "lobit/error.hpp"
 #include "lobit/format/minifloat.hpp"
 #include "lobit/format/power_of_two.hpp"
@@ -21,11 +22,7 @@ std::string number_text(double v) {
   return s;
 }
 
-std::string hex_text(double v) {
-  if (std::isnan(v)) return "nan";
-  if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
-  return fmt::format("{:a}", v);
-}
+std::string hex_text(double v) { return detail::hex_text(v); }
 
 nlohmann::json json_value(double v) {
   if (std::isnan(v)) return "nan";
