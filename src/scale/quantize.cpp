@@ -60,9 +60,7 @@ GroupSummary summarize_scalar(const float* x, std::size_t n, std::size_t stride)
 }
 
 GroupQuantizer::GroupQuantizer(const ScaledFormat& f, double tensor_scale) : f_(f), tensor_scale_(tensor_scale) {
-  unsigned_element_ = f.code_element;
   emax_value_ = f.element_max_value;
-  qmax_ = f.zero ? emax_value_ : 0;
   emax_exp_ = std::ilogb(emax_value_);
   if (f.scale && f.scale->family() == "pow2") pow2_range(*f.scale, scale_lo_exp_, scale_hi_exp_);
   if (f.rule == ScaleRule::mx && f.scale && f.granularity != Granularity::fixed && scale_hi_exp_ >= scale_lo_exp_ &&
@@ -113,7 +111,7 @@ GroupScale GroupQuantizer::choose(const GroupSummary& s, const float* x, std::si
   }
   if (f_.zero) {
     const double lo = std::min(s.min, 0.0), hi = std::max(s.max, 0.0);
-    const double target = (hi - lo) / (qmax_ * tensor_scale_);
+    const double target = (hi - lo) / (emax_value_ * tensor_scale_);  // emax_value_: qmax of the unsigned codes
     g = from_target(target, s, Rounding::nearest_even);
     if (g.scale > 0) {
       g.zero_code = f_.zero->encode(-lo / g.scale, Rounding::nearest_even, Overflow::saturate);
@@ -490,20 +488,17 @@ QuantizedTensor quantize_tensor(const ScaledFormat& f, std::span<const float> da
       out.codes[off + i * g.stride] = g.codes[i];
       out.values[off + i * g.stride] = g.values[i];
     }
-    if (f.granularity == Granularity::fixed || f.granularity == Granularity::tensor) {
-      out.scales[0] = g.scale->scale;
-      out.scale_codes[0] = g.scale->scale_code;
-      return;
-    }
-    const bool first_visit = out.scales[g.index] == 0.0;
-    out.scales[g.index] = g.scale->scale;
-    out.scale_codes[g.index] = g.scale->scale_code;
-    if (f.zero) out.zeros[g.index] = g.scale->zero;
-    if (first_visit) {
-      out.saturated_groups += g.scale->saturated;
-      out.underflow_groups += g.scale->underflow;
-      out.nan_groups += g.scale->nan;
-    }
+    // One call over the whole tensor visits every group once, except a single
+    // tensor-wide (or fixed) scale, which comes with every row: record it once.
+    const bool one_scale = f.granularity == Granularity::fixed || f.granularity == Granularity::tensor;
+    if (one_scale && g.x != base) return;
+    const std::uint64_t gi = one_scale ? 0 : g.index;
+    out.scales[gi] = g.scale->scale;
+    out.scale_codes[gi] = g.scale->scale_code;
+    if (f.zero) out.zeros[gi] = g.scale->zero;
+    out.saturated_groups += g.scale->saturated;
+    out.underflow_groups += g.scale->underflow;
+    out.nan_groups += g.scale->nan;
   });
   return out;
 }

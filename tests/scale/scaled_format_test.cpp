@@ -289,3 +289,17 @@ TEST_CASE("the scorer's fused loop gives the same sums as quantize + accumulate"
   CHECK(ra.rows[0].report.nonfinite == 1);
   CHECK(ra.rows[0].report.n == x.size() - 32);  // the NaN's group of 32 is left out
 }
+
+TEST_CASE("quantize_tensor counts a tensor-wide scale's flags once") {
+  // 3 rows of 4: the NaN makes the one tensor group NaN, counted once although every row carries it.
+  std::vector<float> x(12, 1.0f);
+  x[5] = NAN;
+  auto r = quantize_tensor(*parse_scaled("int4@tensor:fp16"), x, 3, 4, 1);
+  CHECK(r.groups == 1);
+  CHECK(r.nan_groups == 1);
+  CHECK(std::isnan(r.scales[0]));
+  x[5] = 1e30f;  // beyond fp16: the scale saturates
+  r = quantize_tensor(*parse_scaled("int4@tensor:fp16"), x, 3, 4, 1);
+  CHECK(r.saturated_groups == 1);
+  CHECK(r.nan_groups == 0);
+}

@@ -81,11 +81,9 @@ class GroupQuantizer {
 
   const ScaledFormat& f_;
   double tensor_scale_;
-  double emax_value_;       // element max magnitude
+  double emax_value_;       // element max magnitude (affine: qmax of the unsigned codes)
   int emax_exp_;            // ilogb(element max)
   int scale_lo_exp_ = 0, scale_hi_exp_ = 0;  // pow2 scale exponent range
-  std::shared_ptr<const ElementFormat> unsigned_element_;  // affine
-  double qmax_ = 0;         // affine: largest unsigned code value
   double clip_lo_ = 0, clip_hi_ = 0;  // element-domain bounds past which an input counts as clipped
   std::vector<Code> mx_codes_;   // rule mx: scale codes of 2^e, e = scale_lo_exp_ ... scale_hi_exp_
   std::vector<double> mx_pow_;   // and the values 2^e
