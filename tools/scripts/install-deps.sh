@@ -7,7 +7,7 @@ packages=(
   cmake ninja-build g++ make git pkg-config
   libboost-dev libeigen3-dev libfmt-dev libcli11-dev nlohmann-json3-dev
   libtomlplusplus-dev libmpfr-dev libgmp-dev doctest-dev librapidcheck-dev
-  libbenchmark-dev python3
+  libbenchmark-dev python3 libzip-dev clang libclang-rt-14-dev
 )
 
 missing=()
