@@ -18,11 +18,13 @@ demo: build
 	bash examples/demo.sh $(BUILD_DIR)/lobit
 
 test: build
+	bash tools/scripts/fetch-test-models.sh
 	cd $(BUILD_DIR) && ctest --output-on-failure -j $(JOBS)
 
 bench: build
 	$(BUILD_DIR)/tools/bench/lobit_bench --benchmark_min_time=0.5
 	$(BUILD_DIR)/tools/bench/lobit_score_bench --benchmark_min_time=0.5
+	$(BUILD_DIR)/tools/bench/lobit_checkpoint_bench
 
 clean:
 	rm -rf $(BUILD_DIR)

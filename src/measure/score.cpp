@@ -230,6 +230,8 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
     row.bits_per_element = f.bits_per_element(rows, cols, o.axis);
     row.scale_bit_share = (row.bits_per_element - f.element->bits()) / row.bits_per_element;
     row.report = make_report(total, hist);
+    row.sums = total;
+    row.histogram = hist;
     row.top_threshold = res.top_threshold;
     row.ragged = plans[i].ragged;
     res.rows.push_back(std::move(row));

@@ -10,6 +10,7 @@
 #include "lobit/measure/exact_error.hpp"
 #include "lobit/measure/score.hpp"
 #include "lobit/version.hpp"
+#include "score_files.hpp"
 #include "source_factory.hpp"
 
 namespace lobit::cli {
@@ -36,23 +37,36 @@ void add_score_command(CLI::App& app) {
   auto* cmd = app.add_subcommand("score", "Error of formats on a source, per bit spent (scales included)");
   struct Opts {
     std::vector<std::string> specs;
-    std::string source;
+    std::vector<std::string> sources;
     std::uint64_t samples = 1 << 20;
     std::uint64_t seed = 0;
     std::string shape;
+    std::vector<std::string> axis_text;
     int axis = 1;
     int threads = 0;
+    std::uint64_t subsample = 0;
+    bool keep_going = false;
+    TensorFilter filter;
     bool exact = false, json = false, csv = false, md = false;
   };
   auto o = std::make_shared<Opts>();
   cmd->add_option("FORMAT", o->specs, "Formats: ELEMENT or ELEMENT@BLOCK:SCALE[,options]")->required();
-  cmd->add_option("--source", o->source,
-                  "Synthetic source: gauss, laplace, uniform, logistic, student-t+nu=N, outliers, channel-scaled, llm")
+  cmd->add_option("--source", o->sources,
+                  "A synthetic source (gauss, laplace, uniform, logistic, student-t+nu=N, outliers, channel-scaled, "
+                  "llm) or checkpoint files (.safetensors or a sharded index .json, .npy, .npz, .onnx; repeatable)")
       ->required();
   cmd->add_option("--samples", o->samples, "Number of samples for the scalar distributions (default 1048576)");
   cmd->add_option("--seed", o->seed, "Seed of the source (default 0)");
   cmd->add_option("--shape", o->shape, "ROWSxCOLS of the source (default: 1024 columns, or the source's own)");
-  cmd->add_option("--axis", o->axis, "Reduction axis: 1 (blocks along rows, default) or 0 (down columns)");
+  cmd->add_option("--axis", o->axis_text,
+                  "Reduction axis. Synthetic sources: 1 (blocks along rows, default) or 0 (down columns). Files: "
+                  "GLOB=AXES rules, first match wins (e.g. 'fc*=1', 'conv*=1-3', '*=last'); a bare number N is '*=N'. "
+                  "Without a rule the file's graph (ONNX) or the default by rank decides")
+      ->type_name("AXIS|GLOB=AXES");
+  o->filter.add_options(*cmd);
+  cmd->add_option("--subsample", o->subsample,
+                  "Files: score about N elements per tensor (whole rows or columns, seeded by --seed) for a quick look");
+  cmd->add_flag("--keep-going", o->keep_going, "Files: report the other files when one fails (the exit status is still 2)");
   cmd->add_option("--threads", o->threads, "Worker threads (default: all cores); results do not depend on it");
   cmd->add_flag("--exact", o->exact, "Add the closed-form MSE where it applies (bare formats on gauss/laplace/uniform)");
   cmd->add_flag("--json", o->json, "Print a JSON array, one object per format");
@@ -60,11 +74,44 @@ void add_score_command(CLI::App& app) {
   cmd->add_flag("--md", o->md, "Print a Markdown table for a design doc");
   cmd->callback([o] {
     if (o->json + o->csv + o->md > 1) throw usage_error("choose one of --json, --csv, --md", "score");
-    if (o->axis != 0 && o->axis != 1) throw usage_error(fmt::format("--axis {}", o->axis), "score", "use 0 or 1");
+    std::size_t nfiles = 0;
+    for (const auto& s : o->sources) nfiles += is_file_source(s);
+    if (nfiles > 0) {
+      if (nfiles != o->sources.size())
+        throw usage_error("--source mixes files and synthetic sources", "score", "score them in separate runs");
+      if (!o->shape.empty()) throw usage_error("--shape applies to synthetic sources only", "score");
+      FileScoreArgs fa;
+      fa.specs = o->specs;
+      fa.paths = o->sources;
+      fa.filter = o->filter;
+      for (const auto& t : o->axis_text)
+        fa.axis_rules.push_back(io::parse_axis_rule(t.find('=') == std::string::npos ? "*=" + t : t));
+      fa.threads = o->threads;
+      fa.subsample = o->subsample;
+      fa.seed = o->seed;
+      fa.keep_going = o->keep_going;
+      fa.json = o->json, fa.csv = o->csv, fa.md = o->md;
+      if (o->exact) throw usage_error("--exact applies to synthetic sources only", "score");
+      score_files(fa);
+      return;
+    }
+    if (o->sources.size() != 1)
+      throw usage_error("give one synthetic --source", "score", "score several distributions in separate runs");
+    if (!o->filter.include.empty() || !o->filter.exclude.empty() || o->filter.min_rank || o->filter.min_elements ||
+        o->subsample || o->keep_going)
+      throw usage_error("--tensor, --skip-tensor, --min-rank, --min-elements, --subsample and --keep-going apply to "
+                        "checkpoint files only",
+                        "score");
+    if (o->axis_text.size() > 1) throw usage_error("give one --axis for a synthetic source", "score", "use 0 or 1");
+    if (!o->axis_text.empty()) {
+      if (o->axis_text[0] == "0") o->axis = 0;
+      else if (o->axis_text[0] == "1") o->axis = 1;
+      else throw usage_error(fmt::format("--axis {}", o->axis_text[0]), "score", "use 0 or 1 for a synthetic source");
+    }
     if (o->samples == 0) throw usage_error("--samples 0", "score", "give a positive sample count");
     std::vector<std::shared_ptr<const ScaledFormat>> fs;
     for (const auto& s : o->specs) fs.push_back(parse_scaled(s));
-    const auto src = make_source(o->source, o->samples, o->seed, o->shape);
+    const auto src = make_source(o->sources[0], o->samples, o->seed, o->shape);
     ScoreOptions so;
     so.threads = o->threads;
     so.axis = o->axis;

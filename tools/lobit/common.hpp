@@ -41,5 +41,7 @@ void add_compare_command(CLI::App& app);
 void add_score_command(CLI::App& app);
 void add_design_command(CLI::App& app);
 void add_lut_command(CLI::App& app);
+void add_quantize_command(CLI::App& app);
+void add_fit_command(CLI::App& app);
 
 }  // namespace lobit::cli

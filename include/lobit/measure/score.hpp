@@ -65,6 +65,8 @@ struct ScoreRow {
   ErrorReport report;
   double top_threshold = 0;      // |x| at or above this counts as a top magnitude
   bool ragged = false;           // the last block along the axis is shorter than the block size
+  ErrorSums sums;                // what the report was made from (merge these to total several sources)
+  std::vector<std::uint64_t> histogram;  // element code usage
 };
 
 struct ScoreResult {
