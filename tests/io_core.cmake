@@ -11,3 +11,18 @@ if(LOBIT_FUZZ_TESTS)
                    ${LOBIT_FUZZ_SECONDS})
   set_tests_properties(io_fuzz_sanitized PROPERTIES LABELS fuzz TIMEOUT 1800)
 endif()
+
+# score / quantize end to end on the real models (fetched by tools/scripts/fetch-test-models.sh;
+# skipped when they are absent).
+find_package(Python3 COMPONENTS Interpreter)
+if(DEFINED ENV{LOBIT_MODEL_CACHE})
+  set(LOBIT_MODEL_CACHE_DIR $ENV{LOBIT_MODEL_CACHE})
+else()
+  set(LOBIT_MODEL_CACHE_DIR $ENV{HOME}/.cache/lobit-models)
+endif()
+if(Python3_Interpreter_FOUND)
+  add_test(NAME checkpoint_cli_test
+           COMMAND ${Python3_EXECUTABLE} ${CMAKE_SOURCE_DIR}/tests/cli/checkpoint_test.py $<TARGET_FILE:lobit_cli>
+                   ${LOBIT_MODEL_CACHE_DIR})
+  set_tests_properties(checkpoint_cli_test PROPERTIES LABELS cli SKIP_RETURN_CODE 77)
+endif()

@@ -72,10 +72,26 @@ GroupQuantizer::GroupQuantizer(const ScaledFormat& f, double tensor_scale) : f_(
     }
   }
   // Half a gap beyond each end of the element's values.
-  const ValueTable t(*f.code_element);
-  const auto& v = t.values();
-  clip_hi_ = v.back() + (v.back() - v[v.size() - 2]) / 2;
-  clip_lo_ = v.front() - (v[1] - v.front()) / 2;
+  const ElementFormat& e = *f.code_element;
+  if (e.bits() <= 16) {
+    const ValueTable t(e);
+    const auto& v = t.values();
+    clip_hi_ = v.back() + (v.back() - v[v.size() - 2]) / 2;
+    clip_lo_ = v.front() - (v[1] - v.front()) / 2;
+  } else {
+    // Wide formats (floats of more than 16 bits): the top value and its neighbour below,
+    // found by the format's own encoder rather than a table of 2^bits values.
+    const double hi = e.decode(e.encode(INFINITY, Rounding::toward_zero, Overflow::saturate));
+    const double below = e.decode(e.encode(std::nextafter(hi, 0.0), Rounding::toward_zero, Overflow::saturate));
+    clip_hi_ = hi + (hi - below) / 2;
+    const double lo = e.decode(e.encode(-INFINITY, Rounding::toward_zero, Overflow::saturate));
+    if (lo < 0) {
+      clip_lo_ = lo - (hi - below) / 2;
+    } else {  // unsigned: the gap above zero
+      const double up = e.decode(e.encode(std::nextafter(0.0, 1.0), Rounding::up, Overflow::saturate));
+      clip_lo_ = lo - (up - lo) / 2;
+    }
+  }
 }
 
 GroupScale GroupQuantizer::from_target(double target, const GroupSummary&, Rounding r) const {
