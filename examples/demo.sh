@@ -51,6 +51,21 @@ section "MSE-optimal scale of NF4 for Gaussian weights (exact)"
 section "Stochastic rounding is reproducible from a seed"
 "$LOBIT" encode e2m1 2.3 2.3 2.3 2.3 2.3 2.3 --round stochastic --seed 42
 
+work=$(mktemp -d)
+trap 'rm -rf "$work"' EXIT
+python3 "$(dirname "$0")/make_doorbell_checkpoint.py" "$work/doorbell.safetensors"
+
+section "A checkpoint file: what the weights of an (invented) doorbell wake-word detector look like"
+"$LOBIT" fit "$work/doorbell.safetensors" --min-rank 2 --outliers 3 --axis 'frontend.*=1-3' --axis '*=last'
+
+section "Formats scored on every weight of that checkpoint, worst first, with per-file totals"
+"$LOBIT" score mxfp4 mxfp6-e2m3 int4@32:fp16 --source "$work/doorbell.safetensors" --min-rank 2 \
+  --axis 'frontend.*=1-3' --axis '*=last'
+
+section "A mixed-precision copy for evaluation in the user's own framework (map: examples/doorbell-map.toml)"
+"$LOBIT" quantize "$work/doorbell.safetensors" --map "$(dirname "$0")/doorbell-map.toml" --min-rank 2 \
+  --axis 'frontend.*=1-3' --axis '*=last' --out "$work/doorbell-mixed.safetensors"
+
 cat <<'TXT'
 
 Caution: the figures above describe the formats exactly; any error they imply

@@ -16,13 +16,15 @@ endif()
 # skipped when they are absent).
 find_package(Python3 COMPONENTS Interpreter)
 if(DEFINED ENV{LOBIT_MODEL_CACHE})
-  set(LOBIT_MODEL_CACHE_DIR $ENV{LOBIT_MODEL_CACHE})
+  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{LOBIT_MODEL_CACHE}")
 else()
-  set(LOBIT_MODEL_CACHE_DIR $ENV{HOME}/.cache/lobit-models)
+  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{HOME}/.cache/lobit-models")
 endif()
+set(LOBIT_MODEL_CACHE "${LOBIT_MODEL_CACHE_DEFAULT}" CACHE PATH
+    "Folder of the test models (tools/scripts/fetch-test-models.sh puts them there)")
 if(Python3_Interpreter_FOUND)
   add_test(NAME checkpoint_cli_test
            COMMAND ${Python3_EXECUTABLE} ${CMAKE_SOURCE_DIR}/tests/cli/checkpoint_test.py $<TARGET_FILE:lobit_cli>
-                   ${LOBIT_MODEL_CACHE_DIR})
+                   ${LOBIT_MODEL_CACHE})
   set_tests_properties(checkpoint_cli_test PROPERTIES LABELS cli SKIP_RETURN_CODE 77)
 endif()

@@ -24,6 +24,7 @@ int main(int argc, char** argv) {
   lobit::cli::add_design_command(app);
   lobit::cli::add_lut_command(app);
   lobit::cli::add_quantize_command(app);
+  lobit::cli::add_fit_command(app);
   try {
     app.parse(argc, argv);
   } catch (const CLI::CallForHelp& e) {

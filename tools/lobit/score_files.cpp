@@ -76,6 +76,7 @@ class SubsetSource final : public TensorSource {
 };
 
 struct TensorRow {
+  std::size_t file_index = 0;
   std::string file, tensor, shape, axis_text;
   int axis = 1;
   std::uint64_t params = 0, scored = 0;
@@ -205,6 +206,12 @@ void score_files(const FileScoreArgs& a) {
         ScoreOptions so;
         so.threads = nthreads;
         so.axis = jobs[j].view.axis;
+        if (tty && t.count() >= (std::uint64_t{1} << 24))
+          so.progress = [&, j](std::uint64_t d, std::uint64_t n) {
+            std::lock_guard lock(progress_mu);
+            std::fprintf(stderr, "\rscoring %s: %zu of %zu tensors, \"%s\" %3d%%", path.c_str(), done.load(),
+                         jobs.size(), ckpt->tensors()[jobs[j].index].name.c_str(), static_cast<int>(100 * d / n));
+          };
         ScoreResult r;
         if (a.subsample && a.subsample < t.count()) {
           SubsetSource sub(src, a.subsample, a.seed + j);
@@ -243,7 +250,7 @@ void score_files(const FileScoreArgs& a) {
         for (auto& e : errs)
           if (e) std::rethrow_exception(e);
       }
-      if (tty) std::fprintf(stderr, "\r%80s\r", "");
+      if (tty) std::fprintf(stderr, "\r%120s\r", "");
       for (std::size_t j = 0; j < jobs.size(); ++j) {
         const io::TensorInfo& t = ckpt->tensors()[jobs[j].index];
         fr.params += t.count();
@@ -258,6 +265,7 @@ void score_files(const FileScoreArgs& a) {
         bool nonfinite = false;
         for (std::size_t k = 0; k < fs.size(); ++k) {
           TensorRow r;
+          r.file_index = fi;
           r.file = path;
           r.tensor = t.name;
           r.shape = t.shape_text();
@@ -302,7 +310,7 @@ void score_files(const FileScoreArgs& a) {
 
   // Worst first within each file.
   std::stable_sort(rows.begin(), rows.end(), [&](const TensorRow& x, const TensorRow& y) {
-    if (x.file != y.file) return false;
+    if (x.file_index != y.file_index) return x.file_index < y.file_index;
     return sort_key(x.s.report) < sort_key(y.s.report);
   });
   std::uint64_t failed = 0;
@@ -362,7 +370,8 @@ void score_files(const FileScoreArgs& a) {
     for (const auto& [key, t] : totals) line(t.file, "(total)", "", "", t.params, t.format, t.bits(), t.report);
   } else {
     const bool md = a.md;
-    for (const auto& f : files) {
+    for (std::size_t fi = 0; fi < files.size(); ++fi) {
+      const FileResult& f = files[fi];
       if (!f.error.empty()) {
         fmt::print("{} {}: FAILED: {}\n\n", md ? "###" : "#", f.path, f.error);
         continue;
@@ -373,7 +382,7 @@ void score_files(const FileScoreArgs& a) {
                              : "");
       std::size_t wt = 6, wf = 6, wa = 4;
       for (const auto& r : rows)
-        if (r.file == f.path) {
+        if (r.file_index == fi) {
           wt = std::max(wt, r.tensor.size());
           wf = std::max(wf, r.name.size());
           wa = std::max(wa, r.axis_text.size());
@@ -397,9 +406,9 @@ void score_files(const FileScoreArgs& a) {
                      100 * e.zero_rate);
       };
       for (const auto& r : rows)
-        if (r.file == f.path) print_row(r.tensor, r.axis_text, r.name, r.s.bits_per_element, r.s.report);
+        if (r.file_index == fi) print_row(r.tensor, r.axis_text, r.name, r.s.bits_per_element, r.s.report);
       for (const auto& [key, t] : totals)
-        if (t.file == f.path)
+        if (key.first == fi)
           print_row(fmt::format("(total, {} tensors)", t.tensors), "parameter-weighted", t.name, t.bits(), t.report);
       fmt::print("\n");
     }
