@@ -28,6 +28,11 @@ std::string TensorInfo::shape_text() const {
   return s + "]";
 }
 
+std::string quoted_name(std::string_view s) {
+  if (s.size() <= 200) return fmt::format("{:?}", s);
+  return fmt::format("{:?}... ({} bytes)", s.substr(0, 200), s.size());
+}
+
 std::optional<std::size_t> Checkpoint::find(std::string_view name) const {
   for (std::size_t i = 0; i < tensors_.size(); ++i)
     if (tensors_[i].name == name) return i;

@@ -144,12 +144,25 @@ AtomicFileWriter::~AtomicFileWriter() {
 
 void AtomicFileWriter::write(const void* data, std::uint64_t n) {
   if (fd_ < 0) throw Error(Error::Kind::internal, "write after commit", path_);
-  write_all(fd_, data, n, path_);
+  constexpr std::size_t cap = 1 << 20;
+  if (buf_.size() + n > cap) flush();
+  if (n >= cap) {
+    write_all(fd_, data, n, path_);
+  } else {
+    const auto* p = static_cast<const unsigned char*>(data);
+    buf_.insert(buf_.end(), p, p + n);
+  }
   written_ += n;
+}
+
+void AtomicFileWriter::flush() {
+  if (!buf_.empty()) write_all(fd_, buf_.data(), buf_.size(), path_);
+  buf_.clear();
 }
 
 void AtomicFileWriter::commit() {
   if (fd_ < 0) throw Error(Error::Kind::internal, "committed twice", path_);
+  flush();
   if (::fchmod(fd_, 0644) != 0 || ::fsync(fd_) != 0)
     throw usage_error(fmt::format("cannot finish writing: {}", errno_text()), path_, "check the free space");
   if (::close(fd_) != 0) {

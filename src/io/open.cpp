@@ -23,8 +23,8 @@ std::unique_ptr<Checkpoint> open_checkpoint(const std::string& path) {
   const std::size_t n = static_cast<std::size_t>(std::min<std::uint64_t>(sizeof head, f.size()));
   f.read_at(0, head, n);
   const std::string ext = fs::path(path).extension().string();
-  if (n >= 6 && std::equal(head, head + 6, "\x93NUMPY")) return open_npy(path);
-  if (n >= 4 && head[0] == 'P' && head[1] == 'K' && head[2] == 3 && head[3] == 4) return open_npz(path);
+  if (looks_like_npy(head, n)) return open_npy(path);
+  if (looks_like_npz(head, n)) return open_npz(path);
   if (looks_like_safetensors(head, n, f.size())) return open_safetensors(path);
   if (ext == ".json") return open_safetensors(path);  // a sharded index
   if (ext == ".onnx" || looks_like_onnx(head, n)) return open_onnx(path);

@@ -6,6 +6,7 @@
 #include <memory>
 #include <optional>
 #include <string>
+#include <string_view>
 #include <vector>
 
 #include "lobit/io/dtype.hpp"
@@ -66,6 +67,10 @@ class Checkpoint {
   virtual Extent locate(std::size_t i) const = 0;
   std::vector<TensorInfo> tensors_;
 };
+
+// A tensor or member name as it appears in a one-line message: quoted and escaped,
+// names longer than 200 bytes shortened.
+std::string quoted_name(std::string_view name);
 
 // Opens a checkpoint by its content (magic bytes), falling back to the extension:
 // .safetensors (or a sharded index .json), .npy, .npz, .onnx. Throws lobit::Error

@@ -7,6 +7,7 @@
 #include <memory>
 #include <mutex>
 #include <string>
+#include <vector>
 
 namespace lobit::io {
 
@@ -68,10 +69,12 @@ class AtomicFileWriter {
   const std::string& path() const { return path_; }
 
  private:
+  void flush();
   std::string path_, tmp_;
   int fd_ = -1;
   std::uint64_t written_ = 0;
   bool committed_ = false;
+  std::vector<unsigned char> buf_;  // small writes are gathered into 1 MiB system calls
 };
 
 }  // namespace lobit::io
