@@ -179,6 +179,28 @@ for label, model in models.items():
     check(ordered > 0, label + ": refinement order checked on some tensors")
     check(len(a["totals"]) == len(fmts), label + ": one total per format")
 
+    # fit: every floating tensor by default, counts as the independent reader has them,
+    # the same statistics from the ONNX file and from the safetensors copy.
+    fa = json.loads(run("fit", model, "--json").stdout)
+    floating = {t["name"]: t for t in ref["tensors"] if t["floating"] and t["count"] > 0}
+    got = {t["name"]: t for t in fa["tensors"]}
+    check(set(got) == set(floating), label + ": fit selects every non-empty floating tensor")
+    check(all(got[n]["count"] == floating[n]["count"] for n in got), label + ": fit counts == reference counts")
+    check(all(got[n]["shape"] == floating[n]["dims"] for n in got), label + ": fit shapes == reference dims")
+    check(fa["total"]["count"] == sum(t["count"] for t in floating.values()), label + ": total count")
+    for n, t in got.items():
+        for k in ("name", "shape", "count", "mean", "std", "excess_kurtosis", "best_fit"):
+            check(k in t, "%s %s: fit JSON has %s" % (label, n, k))
+        # the mean from the reference reader's float64 sum (storage order, a different summation)
+        ref_mean = float.fromhex(floating[n]["sum"]) / floating[n]["count"]
+        scale = float.fromhex(floating[n]["abs_sum"]) / floating[n]["count"]
+        check(abs(t["mean"] - ref_mean) <= 1e-12 * max(scale, 1e-300) + 1e-300,
+              "%s %s: fit mean == reference mean" % (label, n))
+    fb = json.loads(run("fit", copy, "--json", "--min-rank", "2", *rule).stdout)
+    fc = json.loads(run("fit", model, "--json", "--min-rank", "2", *rule).stdout)
+    strip = lambda j: [{k: v for k, v in t.items() if k != "file"} for t in j["tensors"]]
+    check(strip(fb) == strip(fc), label + ": fit statistics identical from ONNX and safetensors")
+
 # Bad input through the CLI: one line naming the file, exit status 2, no partial output.
 bad = os.path.join(tmp, "bad.safetensors")
 with open(bad, "wb") as f:

@@ -383,7 +383,7 @@ void add_fit_command(CLI::App& app) {
     } else {
       for (const auto& f : files) {
         if (!f.error.empty())
-          fmt::print("# {}: FAILED: {}\n", f.path, f.error);
+          fmt::print("# FAILED: {}\n", f.error);
         else
           fmt::print("# {} ({}): {} tensor{} fitted{}\n", f.path, f.kind, f.fitted, f.fitted == 1 ? "" : "s",
                      f.skipped.empty() ? "" : fmt::format(", {} skipped", f.skipped.size()));

@@ -373,7 +373,7 @@ void score_files(const FileScoreArgs& a) {
     for (std::size_t fi = 0; fi < files.size(); ++fi) {
       const FileResult& f = files[fi];
       if (!f.error.empty()) {
-        fmt::print("{} {}: FAILED: {}\n\n", md ? "###" : "#", f.path, f.error);
+        fmt::print("{} FAILED: {}\n\n", md ? "###" : "#", f.error);
         continue;
       }
       fmt::print("{} {} ({}): {} tensors scored, {} parameters{}{}\n", md ? "###" : "#", f.path, f.kind, f.selected,
