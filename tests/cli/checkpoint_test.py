@@ -201,6 +201,43 @@ for label, model in models.items():
     strip = lambda j: [{k: v for k, v in t.items() if k != "file"} for t in j["tensors"]]
     check(strip(fb) == strip(fc), label + ": fit statistics identical from ONNX and safetensors")
 
+# Threads change no figure; --subsample scores fewer elements, with finite figures.
+m = models["ocr-rec"]
+one = json.loads(run("score", "mxfp4", "int8@row:fp16", "--source", m, "--min-rank", "2", "--json", "--threads", "1").stdout)
+two = json.loads(run("score", "mxfp4", "int8@row:fp16", "--source", m, "--min-rank", "2", "--json", "--threads", "2").stdout)
+check(one["rows"] == two["rows"] and one["totals"] == two["totals"], "score: 1 and 2 threads give identical JSON")
+sub = json.loads(run("score", "mxfp4", "--source", m, "--min-rank", "2", "--json", "--subsample", "4096").stdout)
+check(any(r["subsampled"] for r in sub["rows"]), "--subsample marks subsampled rows")
+check(all(r["scored_elements"] <= max(4096 + 4096, r["parameters"]) and math.isfinite(r["mse"]) for r in sub["rows"]),
+      "--subsample: bounded element counts, finite figures")
+check(sum(r["scored_elements"] for r in sub["rows"]) < sum(r["scored_elements"] for r in one["rows"] if r["format"] == "e2m1@32:e8m0"),
+      "--subsample scores fewer elements")
+
+# NaN and Inf in a tensor: counted, kept out of the error sums, warned about.
+nanfile = os.path.join(tmp, "nan.safetensors")
+vals = [0.5, -1.25, float("nan"), 2.0, float("inf"), -0.75, 0.125, 1.0] * 8
+blob = struct.pack("<%df" % len(vals), *vals)
+hdr = json.dumps({"w": {"dtype": "F32", "shape": [2, 32], "data_offsets": [0, len(blob)]}}).encode()
+hdr += b" " * (-len(hdr) % 8)
+with open(nanfile, "wb") as f:
+    f.write(struct.pack("<Q", len(hdr)) + hdr + blob)
+p = run("score", "e4m3", "int8@row:fp32", "--source", nanfile, "--json")
+rows = {r["name"]: r for r in json.loads(p.stdout)["rows"]}
+r = rows["e4m3"]
+check(r["nonfinite_inputs"] == 16, "NaN/Inf inputs counted (16)")
+# A bare element has no group scale: the 48 finite values are scored, exactly as 48 values
+# (0.5, -1.25, 2, -0.75, 0.125 and 1 are E4M3 values: OCP OFP8 v1.0 section 5, from memory).
+check(r["scored_elements"] == 48 and r["mse"] == 0.0, "NaN/Inf kept out of the sums (bare element)")
+g = rows["int8@row:fp32"]
+# Per-row scales: a NaN in a row makes its scale NaN, so the row's finite values are left out
+# too (the OCP MX rule for a block holding NaN, applied to every scaled format).
+check(g["scored_elements"] == 0 and g["finite_inputs_in_nan_groups"] == 48 and g["groups"]["nan"] == 2,
+      "NaN/Inf make their groups NaN; the groups' finite values are counted apart")
+check("NaN/Inf" in p.stderr and "48 finite values there are left out too" in p.stderr,
+      "NaN/Inf and the NaN groups warned about")
+fz = json.loads(run("fit", nanfile, "--json").stdout)["tensors"][0]
+check(fz["nonfinite"] == 16 and fz["count"] == 48, "fit counts NaN/Inf apart")
+
 # Bad input through the CLI: one line naming the file, exit status 2, no partial output.
 bad = os.path.join(tmp, "bad.safetensors")
 with open(bad, "wb") as f:
@@ -216,5 +253,7 @@ run("quantize", bad, "--format", "mxfp4", "--out", dest, expect=2)
 check(not os.path.exists(dest), "no output file after a failed quantize")
 run("quantize", models["silero"], "--format", "mxfp4", "--out", "/nonexistent-dir/x.safetensors", expect=2)
 
+import shutil
+shutil.rmtree(tmp, ignore_errors=True)
 print("%d passed, %d failed" % (checks - failures, failures))
 sys.exit(1 if failures else 0)

@@ -293,8 +293,13 @@ void score_files(const FileScoreArgs& a) {
         }
         if (nonfinite) {
           ++nonfinite_tensors;
-          warnings.push_back(fmt::format("{}: tensor \"{}\": {} NaN/Inf values, left out of every error sum", path,
-                                         t.name, results[j][0].report.nonfinite));
+          std::string groups;
+          for (std::size_t k = 0; k < fs.size(); ++k)
+            if (results[j][k].sums.nan_outputs)
+              groups += fmt::format("; with {} their groups' scale is NaN, so {} finite values there are left out too",
+                                    a.specs[k], results[j][k].sums.nan_outputs);
+          warnings.push_back(fmt::format("{}: tensor \"{}\": {} NaN/Inf values, left out of every error sum{}", path,
+                                         t.name, results[j][0].report.nonfinite, groups));
         }
       }
     } catch (const Error& e) {
@@ -335,7 +340,8 @@ void score_files(const FileScoreArgs& a) {
                           {"name", r.name},
                           {"bits_per_element", r.s.bits_per_element},
                           {"scale_bit_share", r.s.scale_bit_share},
-                          {"ragged_last_block", r.s.ragged}};
+                          {"ragged_last_block", r.s.ragged},
+                          {"finite_inputs_in_nan_groups", r.s.sums.nan_outputs}};
       j.update(report_json(r.s.report));
       jr.push_back(std::move(j));
     }
