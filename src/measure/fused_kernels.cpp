@@ -37,6 +37,37 @@ KernelTable make_kernel_table(const ElementFormat& e) {
   return k;
 }
 
+WideKernelTable make_wide_kernel_table(const ElementFormat& e) {
+  WideKernelTable k;
+  for (double& v : k.thr) v = INFINITY;
+  if (e.bits() > 16) return k;
+  const ValueTable t(e);
+  const auto& th = t.thresholds();
+  if (t.values().size() > 256 || th.empty()) return k;
+  for (std::size_t j = 0; j < th.size(); ++j) {
+    if (!th[j].exact_in_double()) return k;
+    k.thr[j] = th[j].tie_to_upper ? std::nextafter(th[j].nearest, -INFINITY) : th[j].nearest;
+  }
+  for (std::size_t i = 0; i < t.values().size(); ++i) {
+    k.code[i] = t.codes()[i];
+    k.val[i] = e.decode(t.codes()[i]);
+    if (t.values()[i] == 0) k.zero_index = static_cast<int>(i);
+  }
+  if (e.has_negative_zero() && k.zero_index >= 0) k.has_neg_zero = true, k.neg_zero_code = e.encode(-0.0);
+  k.ok = true;
+  return k;
+}
+
+void flush_wide_histogram(WideHist& h, const WideKernelTable& t, std::uint64_t* hist) {
+  for (std::size_t j = 0; j < h.idx.size(); ++j)
+    if (h.idx[j]) hist[t.code[j % 256]] += h.idx[j], h.idx[j] = 0;
+  if (h.neg_zero) {
+    hist[t.code[static_cast<std::size_t>(t.zero_index)]] -= h.neg_zero;
+    hist[t.neg_zero_code] += h.neg_zero;
+    h.neg_zero = 0;
+  }
+}
+
 bool have_avx512() {
   static const bool ok = [] {
     // LOBIT_DISABLE_AVX512 (any value): the scalar loops everywhere, to test them on any CPU.
@@ -76,13 +107,21 @@ LOBIT_AVX512 void widen(HistState& h, __m512i lo, __m512i hi) {
   }
 }
 
-template <bool Pow2, bool Hist>
-LOBIT_AVX512 void group_kernel(const KernelTable& t, const float* x, std::size_t n, double s, double inv,
+// Table: KernelTable (up to 16 values, in registers) or WideKernelTable (up to 256,
+// gathered); Histogram: HistState or WideHist to match.
+template <bool Pow2, bool Hist, class Table, class Histogram>
+LOBIT_AVX512 void group_kernel(const Table& t, const float* x, std::size_t n, double s, double inv,
                                double chi, double clo, double top, GroupSums& out, LaneSums& lanes,
-                               HistState* hist) {
-  const __m512d thr_lo = _mm512_load_pd(t.thr), thr_hi = _mm512_load_pd(t.thr + 8);
-  const __m512d val_lo = _mm512_load_pd(t.val), val_hi = _mm512_load_pd(t.val + 8);
-  const __m512d t3 = _mm512_set1_pd(t.thr[3]), t7 = _mm512_set1_pd(t.thr[7]), t11 = _mm512_set1_pd(t.thr[11]);
+                               Histogram* hist) {
+  constexpr bool wide = std::is_same_v<Table, WideKernelTable>;
+  const double* thr = std::data(t.thr);
+  const double* val = std::data(t.val);
+  __m512d thr_lo{}, thr_hi{}, val_lo{}, val_hi{}, t3{}, t7{}, t11{};
+  if constexpr (!wide) {
+    thr_lo = _mm512_load_pd(thr), thr_hi = _mm512_load_pd(thr + 8);
+    val_lo = _mm512_load_pd(val), val_hi = _mm512_load_pd(val + 8);
+    t3 = _mm512_set1_pd(thr[3]), t7 = _mm512_set1_pd(thr[7]), t11 = _mm512_set1_pd(thr[11]);
+  }
   const __m512d vs = _mm512_set1_pd(s), vinv = _mm512_set1_pd(inv), vchi = _mm512_set1_pd(chi),
                 vclo = _mm512_set1_pd(clo), vtop = _mm512_set1_pd(top), zero = _mm512_setzero_pd();
   const __m512i i2 = _mm512_set1_epi64(2), i1 = _mm512_set1_epi64(1), izero = _mm512_set1_epi64(t.zero_index);
@@ -96,28 +135,68 @@ LOBIT_AVX512 void group_kernel(const KernelTable& t, const float* x, std::size_t
   const __m512i i64 = _mm512_set1_epi64(64);
   const bool negzero = t.has_neg_zero;
   int pending = 0;
-  if (Hist) {
+  if constexpr (Hist && !wide) {
     hlo = _mm512_load_si512(hist->lo), hhi = _mm512_load_si512(hist->hi), pending = hist->pending;
     negz = _mm512_load_si512(hist->neg_zero);
   }
+  alignas(64) std::int64_t lane_idx[8];
+  // Wide tables: the eight gathers of a search depend on each other, so the searches
+  // of four vectors run side by side (a tile of 32 inputs) to overlap their latency.
+  __m512i tile_idx[4];
+  __m512d tile_y[4];
   for (std::size_t i = 0; i < n; i += 8) {
     const std::size_t rem = n - i;
     const __mmask8 valid = rem >= 8 ? static_cast<__mmask8>(0xFF) : static_cast<__mmask8>((1u << rem) - 1);
     const __m512d xv = _mm512_cvtps_pd(_mm256_maskz_loadu_ps(valid, x + i));
-    const __m512d y = Pow2 ? _mm512_mul_pd(xv, vinv) : _mm512_div_pd(xv, vs);
+    __m512d y;
+    if constexpr (wide) {
+      const std::size_t slot = (i / 8) % 4;
+      if (slot == 0) {
+        for (int k = 0; k < 4; ++k) {
+          const std::size_t at = i + 8 * static_cast<std::size_t>(k);
+          const std::size_t left = at < n ? n - at : 0;
+          const __mmask8 m = left >= 8 ? static_cast<__mmask8>(0xFF) : static_cast<__mmask8>((1u << left) - 1);
+          const __m512d xk = _mm512_cvtps_pd(_mm256_maskz_loadu_ps(m, x + (at < n ? at : 0)));
+          tile_y[k] = Pow2 ? _mm512_mul_pd(xk, vinv) : _mm512_div_pd(xk, vs);
+          tile_idx[k] = _mm512_setzero_si512();
+        }
+        for (int lg = 7; lg >= 0; --lg) {
+          const __m512i step = _mm512_set1_epi64((std::int64_t{1} << lg) - 1);
+          for (int k = 0; k < 4; ++k) {
+            const __m512i probe = _mm512_add_epi64(tile_idx[k], step);
+            tile_idx[k] = _mm512_add_epi64(
+                tile_idx[k], _mm512_slli_epi64(below(_mm512_i64gather_pd(probe, thr, 8), tile_y[k]), lg));
+          }
+        }
+      }
+      y = tile_y[slot];
+    } else {
+      y = Pow2 ? _mm512_mul_pd(xv, vinv) : _mm512_div_pd(xv, vs);
+    }
     // Index: entries of thr' below y. Comparisons are counted by the sign of a
     // difference (measured faster here than mask compares): for finite y and
     // finite or +inf t, fl(t - y) < 0 exactly when t < y (rounding keeps the sign,
     // gradual underflow keeps t - y nonzero for t != y, and t - y = +0 for t == y).
     // First the block of four, k = #{thr'_3, thr'_7, thr'_11 below y}, then the
     // entries 4k, 4k + 1, 4k + 2 of that block (any count of a sorted table will do).
-    const __m512i k3 = _mm512_add_epi64(_mm512_add_epi64(below(t3, y), below(t7, y)), below(t11, y));
-    const __m512i blk = _mm512_slli_epi64(k3, 2);
-    __m512i idx = _mm512_add_epi64(blk, below(_mm512_permutex2var_pd(thr_lo, blk, thr_hi), y));
-    idx = _mm512_add_epi64(
-        idx, _mm512_add_epi64(below(_mm512_permutex2var_pd(thr_lo, _mm512_add_epi64(blk, i1), thr_hi), y),
-                              below(_mm512_permutex2var_pd(thr_lo, _mm512_add_epi64(blk, i2), thr_hi), y)));
-    const __m512d q = _mm512_mul_pd(vs, _mm512_permutex2var_pd(val_lo, idx, val_hi));
+    __m512i idx;
+    __m512d v;
+    if constexpr (wide) {
+      // Binary search over the 256 padded entries (done for the tile above): after the
+      // steps 128, 64, ..., 1 the index is the number of entries of thr' below y (entry
+      // 255 is never probed). Lanes past n hold y = 0 and are masked out below.
+      idx = tile_idx[(i / 8) % 4];
+      v = _mm512_i64gather_pd(idx, val, 8);
+    } else {
+      const __m512i k3 = _mm512_add_epi64(_mm512_add_epi64(below(t3, y), below(t7, y)), below(t11, y));
+      const __m512i blk = _mm512_slli_epi64(k3, 2);
+      idx = _mm512_add_epi64(blk, below(_mm512_permutex2var_pd(thr_lo, blk, thr_hi), y));
+      idx = _mm512_add_epi64(
+          idx, _mm512_add_epi64(below(_mm512_permutex2var_pd(thr_lo, _mm512_add_epi64(blk, i1), thr_hi), y),
+                                below(_mm512_permutex2var_pd(thr_lo, _mm512_add_epi64(blk, i2), thr_hi), y)));
+      v = _mm512_permutex2var_pd(val_lo, idx, val_hi);
+    }
+    const __m512d q = _mm512_mul_pd(vs, v);
     const __m512d err = _mm512_sub_pd(q, xv);
     const __m512d e2 = _mm512_mul_pd(err, err);
     ue = _mm512_mask_add_pd(ue, valid, ue, e2);
@@ -136,7 +215,16 @@ LOBIT_AVX512 void group_kernel(const KernelTable& t, const float* x, std::size_t
     te2 = _mm512_mask_add_pd(te2, tm, te2, e2);
     // Clipped: y > chi or y < clo (chi > clo: at most one of the two).
     clip = _mm512_mask_add_epi64(clip, valid, clip, _mm512_add_epi64(below(vchi, y), below(y, vclo)));
-    if (Hist) {
+    if constexpr (Hist && wide) {
+      _mm512_store_si512(lane_idx, idx);
+      for (int l = 0; l < 8; ++l)
+        if ((valid >> l) & 1) ++hist->idx[256 * static_cast<std::size_t>(l) + static_cast<std::size_t>(lane_idx[l])];
+      if (negzero) {
+        const __mmask8 neg = valid & _mm512_movepi64_mask(_mm512_castpd_si512(y));
+        hist->neg_zero += static_cast<std::uint64_t>(__builtin_popcount(_mm512_mask_cmpeq_epi64_mask(neg, idx, izero)));
+      }
+    }
+    if constexpr (Hist && !wide) {
       if (negzero) {  // y with the sign bit at the index of zero: the code of -0
         const __mmask8 neg = valid & _mm512_movepi64_mask(_mm512_castpd_si512(y));
         negz = _mm512_mask_add_epi64(negz, _mm512_mask_cmpeq_epi64_mask(neg, idx, izero), negz, i1);
@@ -153,7 +241,7 @@ LOBIT_AVX512 void group_kernel(const KernelTable& t, const float* x, std::size_t
       }
     }
   }
-  if (Hist) {
+  if constexpr (Hist && !wide) {
     _mm512_store_si512(hist->lo, hlo);
     _mm512_store_si512(hist->hi, hhi);
     _mm512_store_si512(hist->neg_zero, negz);
@@ -182,8 +270,9 @@ LOBIT_AVX512 void flush_avx512(HistState& h) {
 
 }  // namespace
 
-void group_avx512(const KernelTable& t, const float* x, std::size_t n, double s, double inv, bool pow2, double chi,
-                  double clo, double top, GroupSums& out, LaneSums& lanes, HistState* hist) {
+template <class Table, class Histogram>
+void dispatch(const Table& t, const float* x, std::size_t n, double s, double inv, bool pow2, double chi, double clo,
+              double top, GroupSums& out, LaneSums& lanes, Histogram* hist) {
   if (pow2) {
     if (hist) group_kernel<true, true>(t, x, n, s, inv, chi, clo, top, out, lanes, hist);
     else group_kernel<true, false>(t, x, n, s, inv, chi, clo, top, out, lanes, hist);
@@ -191,6 +280,16 @@ void group_avx512(const KernelTable& t, const float* x, std::size_t n, double s,
     if (hist) group_kernel<false, true>(t, x, n, s, inv, chi, clo, top, out, lanes, hist);
     else group_kernel<false, false>(t, x, n, s, inv, chi, clo, top, out, lanes, hist);
   }
+}
+
+void group_avx512(const KernelTable& t, const float* x, std::size_t n, double s, double inv, bool pow2, double chi,
+                  double clo, double top, GroupSums& out, LaneSums& lanes, HistState* hist) {
+  dispatch(t, x, n, s, inv, pow2, chi, clo, top, out, lanes, hist);
+}
+
+void group_avx512_wide(const WideKernelTable& t, const float* x, std::size_t n, double s, double inv, bool pow2,
+                       double chi, double clo, double top, GroupSums& out, LaneSums& lanes, WideHist* hist) {
+  dispatch(t, x, n, s, inv, pow2, chi, clo, top, out, lanes, hist);
 }
 
 namespace {

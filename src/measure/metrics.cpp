@@ -42,11 +42,18 @@ ErrorAccumulator::ErrorAccumulator(const ScaledFormat& f, double top_threshold)
       f.code_element->bits() <= f.element->bits()) {
     kt_ = fused::make_kernel_table(*f.code_element);
     vec_ = kt_.ok && fused::have_avx512();
+    if (!kt_.ok && fused::have_avx512()) {
+      wkt_ = fused::make_wide_kernel_table(*f.code_element);
+      vec_ = wide_ = wkt_.ok;
+    }
   }
 }
 
 std::vector<std::uint64_t>& ErrorAccumulator::histogram() {
-  if (vec_ && !hist_.empty()) fused::flush_histogram(hs_, kt_, hist_.data());
+  if (vec_ && !hist_.empty()) {
+    if (wide_) fused::flush_wide_histogram(whs_, wkt_, hist_.data());
+    else fused::flush_histogram(hs_, kt_, hist_.data());
+  }
   return hist_;
 }
 
@@ -150,7 +157,10 @@ void ErrorAccumulator::add_fused(const GroupView& g) {
     // The vector kernel (fused_kernels.hpp): the same per-element terms, the
     // group's sums formed in lanes.
     fused::GroupSums r;
-    fused::group_avx512(kt_, g.x, g.n, s, inv, pow2, chi, clo, top, r, lanes_, hist ? &hs_ : nullptr);
+    if (wide_)
+      fused::group_avx512_wide(wkt_, g.x, g.n, s, inv, pow2, chi, clo, top, r, lanes_, hist ? &whs_ : nullptr);
+    else
+      fused::group_avx512(kt_, g.x, g.n, s, inv, pow2, chi, clo, top, r, lanes_, hist ? &hs_ : nullptr);
     ue = r.err2;
   } else  // the scalar loop: the definition the kernels reproduce
   for (std::size_t i = 0; i < g.n; ++i) {

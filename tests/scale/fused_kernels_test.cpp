@@ -78,7 +78,10 @@ const char* const kFormats[] = {
     "e2m1@32:e8m0",  "int4@32:fp16",  "nf4@64:fp16",          "int4@32:e8m0",     "nf4@32:e8m0",
     "e2m1@7:fp16",   "e2m1@row:fp32", "e2m1@16:e4m3,tensor-scale=fp32", "uint4@64:fp16,zero=uint4",
     "int4@tensor:fp32", "int4@col:bf16", "e3m2,scale=0.25", "nf4@64:fp32,scales=e4m3@256:fp32",
-    "e2m1@32:e8m0,rule=absmax", "int4@32:fp16,rule=noclip", "int4@32:fp16,rule=mse", "e4m3@32:e8m0"};
+    "e2m1@32:e8m0,rule=absmax", "int4@32:fp16,rule=noclip", "int4@32:fp16,rule=mse", "e4m3@32:e8m0",
+    // 17 to 256 values: the wide kernel
+    "e5m2@32:e8m0", "int8@32:fp16", "int8-frac6@32:e8m0", "e2m3@32:e8m0", "e3m2@row:fp32", "uint8@64:fp16",
+    "e4m3-single-nan@16:fp32", "int5@32:bf16,rule=mse", "e4m3@tensor:fp32"};
 
 std::vector<float> source(const std::string& kind, std::size_t n, unsigned seed) {
   std::vector<float> x(n);
@@ -117,7 +120,9 @@ TEST_CASE("fused kernels: the same sums, counts and codes as quantize + accumula
   // Where the CPU has them, the formats of up to 16 values take the kernels.
   CHECK(ErrorAccumulator(*parse_scaled("e2m1@32:e8m0"), 1.0).vector_kernels() == fused::have_avx512());
   CHECK(ErrorAccumulator(*parse_scaled("nf4@64:fp16"), 1.0).vector_kernels() == fused::have_avx512());
-  CHECK(!ErrorAccumulator(*parse_scaled("e4m3@32:e8m0"), 1.0).vector_kernels());
+  CHECK(ErrorAccumulator(*parse_scaled("e4m3@32:e8m0"), 1.0).vector_kernels() == fused::have_avx512());
+  CHECK(ErrorAccumulator(*parse_scaled("int8@32:fp16"), 1.0).vector_kernels() == fused::have_avx512());
+  CHECK(!ErrorAccumulator(*parse_scaled("fp16@32:fp32"), 1.0).vector_kernels());  // 65536 values: scalar
   for (const char* kind : {"gauss", "student", "special"}) {
     for (const auto& [rows, cols] : {std::pair<std::uint64_t, std::uint64_t>{24, 256}, {17, 100}, {5, 37}}) {
       const std::vector<float> x = source(kind, rows * cols, 11);
@@ -230,6 +235,60 @@ TEST_CASE("fused kernels: element codes equal NearestTable::encode, ties and sig
       }
     }
   }
+}
+
+TEST_CASE("fused kernels: the wide kernel's codes equal NearestTable::encode, ties and signed zeros included") {
+  if (!fused::have_avx512()) return;  // nothing to compare on this CPU: the scalar loop runs
+  int tables = 0;
+  for (const char* spec : {"e4m3", "e5m2", "int8", "uint8", "int8-frac6", "e2m3", "e3m2", "e4m3-single-nan",
+                           "e5m2-single-nan", "int5", "int6", "int7", "e3m4+subnormals=no", "e4m3+bias=3"}) {
+    const auto f = parse_scaled(std::string(spec) + "@32:fp32");
+    INFO(spec);
+    REQUIRE(f->element_table);
+    const NearestTable& nt = *f->element_table;
+    const fused::WideKernelTable kt = fused::make_wide_kernel_table(*f->code_element);
+    if (!kt.ok) continue;
+    ++tables;
+    const ValueTable vt(*f->code_element);
+    std::vector<float> xs = {0.0f, -0.0f, 1e-45f, -1e-45f, 1e-30f, -1e-30f, 3e38f, -3e38f, 1e6f, -1e6f};
+    auto add = [&](double v) {
+      const float fv = static_cast<float>(v);
+      for (float u : {fv, std::nextafter(fv, -INFINITY), std::nextafter(fv, INFINITY)}) xs.push_back(u);
+    };
+    for (double v : vt.values()) add(v), add(3 * v);
+    for (const auto& t : vt.thresholds()) add(t.nearest), add(3 * t.nearest);
+    std::vector<std::uint64_t> hist(std::size_t{1} << f->code_element->bits(), 0);
+    int bad = 0;
+    for (double s : {1.0, 3.0, 0.5}) {
+      const bool pow2 = s != 3.0;
+      // All inputs in one call (groups of any length, masked tails), then one at a time.
+      for (std::size_t len : {xs.size(), std::size_t{1}}) {
+        for (std::size_t at = 0; at < xs.size(); at += len) {
+          const std::size_t n = std::min(len, xs.size() - at);
+          fused::WideHist hs;
+          fused::GroupSums r;
+          fused::LaneSums lanes;
+          fused::group_avx512_wide(kt, xs.data() + at, n, s, 1.0 / s, pow2, -INFINITY, INFINITY, INFINITY, r, lanes,
+                                   &hs);
+          std::fill(hist.begin(), hist.end(), 0);
+          fused::flush_wide_histogram(hs, kt, hist.data());
+          std::vector<std::uint64_t> want(hist.size(), 0);
+          double err2 = 0;
+          for (std::size_t i = at; i < at + n; ++i) {
+            const double y = pow2 ? xs[i] * (1.0 / s) : xs[i] / s;
+            const Code c = nt.encode(y);
+            ++want[c];
+            const double q = s * nt.decode(c);
+            err2 += (q - xs[i]) * (q - xs[i]);
+          }
+          bad += hist != want;
+          if (n == 1) bad += r.err2 != err2;
+        }
+      }
+    }
+    CHECK(bad == 0);
+  }
+  CHECK(tables >= 10);
 }
 
 TEST_CASE("fused kernels: the vector group summary equals the scalar loop") {

@@ -97,7 +97,11 @@ void score_checkpoint(benchmark::State& state, std::vector<std::string> specs) {
 BENCHMARK_CAPTURE(score_checkpoint, mx_int_three_formats,
                   std::vector<std::string>{"mxfp4", "mxfp8-e4m3", "int4@32:fp16"})
     ->Arg(1)->Arg(2)->Iterations(1)->Unit(benchmark::kSecond)->UseRealTime();
-BENCHMARK_CAPTURE(score_checkpoint, one_format, std::vector<std::string>{"mxfp4"})
-    ->Arg(2)->Iterations(1)->Unit(benchmark::kSecond)->UseRealTime();
+BENCHMARK_CAPTURE(score_checkpoint, mxfp4, std::vector<std::string>{"mxfp4"})
+    ->Arg(1)->Arg(2)->Iterations(1)->Unit(benchmark::kSecond)->UseRealTime();
+BENCHMARK_CAPTURE(score_checkpoint, mxfp8_e4m3, std::vector<std::string>{"mxfp8-e4m3"})
+    ->Arg(1)->Iterations(1)->Unit(benchmark::kSecond)->UseRealTime();
+BENCHMARK_CAPTURE(score_checkpoint, int4_fp16_scales, std::vector<std::string>{"int4@32:fp16"})
+    ->Arg(1)->Iterations(1)->Unit(benchmark::kSecond)->UseRealTime();
 
 BENCHMARK_MAIN();

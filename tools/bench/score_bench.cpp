@@ -38,4 +38,6 @@ void score_one(benchmark::State& state, const char* spec) {
 BENCHMARK_CAPTURE(score_one, mxfp4, "e2m1@32:e8m0")->Arg(1)->Arg(2)->Unit(benchmark::kMillisecond)->UseRealTime();
 BENCHMARK_CAPTURE(score_one, int4_fp16, "int4@32:fp16")->Arg(1)->Arg(2)->Unit(benchmark::kMillisecond)->UseRealTime();
 BENCHMARK_CAPTURE(score_one, nf4_fp16, "nf4@64:fp16")->Arg(1)->Arg(2)->Unit(benchmark::kMillisecond)->UseRealTime();
+BENCHMARK_CAPTURE(score_one, mxfp8_e4m3, "e4m3@32:e8m0")->Arg(1)->Arg(2)->Unit(benchmark::kMillisecond)->UseRealTime();
+BENCHMARK_CAPTURE(score_one, mxint8, "mxint8")->Arg(1)->Arg(2)->Unit(benchmark::kMillisecond)->UseRealTime();
 BENCHMARK_MAIN();

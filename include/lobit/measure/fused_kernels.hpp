@@ -32,6 +32,7 @@
 // decides) or a NaN/inf sends the group to the scalar loop.
 #include <cstddef>
 #include <cstdint>
+#include <vector>
 
 #include "lobit/format/element_format.hpp"
 
@@ -49,6 +50,31 @@ struct KernelTable {
   bool ok = false;             // usable by the kernels
 };
 KernelTable make_kernel_table(const ElementFormat& code_element);
+
+// The element table of formats of 17 to 256 values (8-bit minifloats and integers,
+// codebooks) whose thresholds are exact in binary64. The kernel finds the index by a
+// branch-free binary search of eight gathered comparisons (thr' padded with +inf to
+// 256 entries, so the search counts the entries below y); everything else is the
+// 16-value kernel's arithmetic, term for term.
+struct WideKernelTable {
+  std::vector<double> thr = std::vector<double>(256, 0.0);  // thr' (as above), padded with +inf
+  std::vector<double> val = std::vector<double>(256, 0.0);  // decoded value by index
+  std::vector<Code> code = std::vector<Code>(256, 0);
+  int zero_index = -1;
+  bool has_neg_zero = false;
+  Code neg_zero_code = 0;
+  bool ok = false;
+};
+WideKernelTable make_wide_kernel_table(const ElementFormat& code_element);
+
+// Index counts of the wide kernel, one row of 256 per vector lane (so that the counts
+// of neighbouring lanes do not wait on each other), and the inputs that take the code
+// of -0 (counted under +0 in idx).
+struct WideHist {
+  std::vector<std::uint64_t> idx = std::vector<std::uint64_t>(8 * 256, 0);  // [lane][index]
+  std::uint64_t neg_zero = 0;
+};
+void flush_wide_histogram(WideHist& h, const WideKernelTable& t, std::uint64_t* hist);
 
 // Packed per-lane index counters carried from group to group.
 struct HistState {
@@ -95,6 +121,9 @@ bool have_avx512();
 // and pow2 as in add_fused). hist may be null (no histogram).
 void group_avx512(const KernelTable& t, const float* x, std::size_t n, double s, double inv, bool pow2, double chi,
                   double clo, double top, GroupSums& out, LaneSums& lanes, HistState* hist);
+// The same for a wide table.
+void group_avx512_wide(const WideKernelTable& t, const float* x, std::size_t n, double s, double inv, bool pow2,
+                       double chi, double clo, double top, GroupSums& out, LaneSums& lanes, WideHist* hist);
 
 // Summary of n contiguous inputs (as lobit::summarize); returns false where the
 // caller must take the scalar loop (a NaN/inf, or a zero min or max whose sign

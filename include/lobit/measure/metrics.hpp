@@ -61,7 +61,7 @@ class ErrorAccumulator {
   }
   // Element code usage (pending vector-kernel counts are added first).
   std::vector<std::uint64_t>& histogram();
-  // Whether add_fused runs the vector kernels here (formats of up to 16 values on AVX-512 CPUs).
+  // Whether add_fused runs the vector kernels here (formats of up to 256 values on AVX-512 CPUs).
   bool vector_kernels() const { return vec_; }
 
  private:
@@ -76,7 +76,10 @@ class ErrorAccumulator {
   mutable fused::LaneSums lanes_;  // the kernels' sums not yet in s_ (flushed when s_ is read)
   fused::KernelTable kt_;   // the element table in the kernels' layout
   fused::HistState hs_;     // index counts not yet added to hist_
+  fused::WideKernelTable wkt_;  // formats of 17 to 256 values: the wide kernel's table
+  fused::WideHist whs_;
   bool vec_ = false;
+  bool wide_ = false;       // vec_ with the wide kernel
   const ScaledFormat& f_;
   double top_threshold_;
   mutable ErrorSums s_;
