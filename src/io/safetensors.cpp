@@ -8,6 +8,7 @@
 #include <fmt/format.h>
 
 #include <algorithm>
+#include <charconv>
 #include <array>
 #include <cstring>
 #include <filesystem>
@@ -452,6 +453,35 @@ ParsedFile parse_file(const RandomAccessFile& f, const std::string& origin) {
     l.info.origin = origin;
     l.offset = data_begin + begin;
     out.tensors.push_back(std::move(l));
+  }
+
+  // Reduction axes recorded by `lobit quantize` ("lobit.axes.NAME" = "1,2,3"): the tensor's
+  // axis hint, so that a quantized copy is scored and fitted along the axes it was made
+  // with. A value that does not fit the tensor's rank is not a hint (the default applies).
+  for (const auto& [key, value] : out.metadata) {
+    constexpr std::string_view prefix = "lobit.axes.";
+    if (key.rfind(prefix, 0) != 0) continue;
+    const std::string name = key.substr(prefix.size());
+    for (Located& l : out.tensors) {
+      if (l.info.name != name) continue;
+      AxisHint h;
+      bool ok = !value.empty();
+      std::size_t at = 0;
+      while (ok && at <= value.size()) {
+        const std::size_t comma = std::min(value.find(',', at), value.size());
+        int axis = -1;
+        const auto [p, ec] = std::from_chars(value.data() + at, value.data() + comma, axis);
+        ok = ec == std::errc() && p == value.data() + comma && axis >= 0 &&
+             axis < static_cast<int>(std::max<std::size_t>(l.info.shape.size(), 1)) &&
+             (h.reduce.empty() || axis > h.reduce.back());
+        if (ok) h.reduce.push_back(axis);
+        at = comma + 1;
+      }
+      if (ok) {
+        h.reason = "recorded by lobit quantize";
+        l.info.axis_hint = std::move(h);
+      }
+    }
   }
 
   // Names are unique and byte ranges disjoint (empty tensors hold no bytes and cannot overlap).

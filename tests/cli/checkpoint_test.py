@@ -117,6 +117,15 @@ for label, model in models.items():
         check(abs(s - float.fromhex(r["sum"])) <= 1e-9 * max(1.0, float.fromhex(r["abs_sum"])),
               "%s %s: dump input sum == reference sum" % (label, name))
 
+    # The copy records each tensor's reduction axes, so scoring it again with the same
+    # format uses the same groups: every value is already on the grid (MX scales are
+    # powers of two and the block absmax can only shrink to a value of the grid).
+    again = json.loads(run("score", "mxfp4", "--source", out_v, "--min-rank", "2", "--json").stdout)
+    check(all(r["lossless"] for r in again["rows"] if r["tensor"] in quantized),
+          label + ": mxfp4 of an mxfp4 copy is lossless (axes recorded in the file)")
+    check(not any(r["axis_assumed"] for r in again["rows"] if r["tensor"] in quantized),
+          label + ": recorded axes are used, none assumed")
+
     # Codes layout: decode int4@32:fp16 codes and scales here and compare with the dump.
     out_c = os.path.join(tmp, label + "-int4.safetensors")
     run("quantize", model, "--format", "int4@32:fp16", "--min-rank", "2", "--store", "codes", "--out", out_c)

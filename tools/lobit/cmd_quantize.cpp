@@ -383,6 +383,11 @@ void add_quantize_command(CLI::App& app) {
                           {"axis_reason", a.axis_reason}, {"element_bits", f.code_element->bits()},
                           {"scale_bits", f.scale ? f.scale->bits() : 0}, {"tensor_scale", a.plan.tensor_scale}};
       meta.push_back({"lobit." + t.name, m.dump()});
+      if (o->store == "values") {  // read back as the tensor's axis hint (safetensors reader)
+        std::string axes;
+        for (int r : a.view.reduce) axes += (axes.empty() ? "" : ",") + std::to_string(r);
+        if (!axes.empty()) meta.push_back({"lobit.axes." + t.name, axes});
+      }
     }
     if (quantized == 0) throw usage_error("no tensor selected for quantization", o->input, "check --tensor and the map");
     io::SafetensorsWriter w(o->out, plan, meta);
