@@ -14,14 +14,7 @@ endif()
 
 # score / quantize end to end on the real models (fetched by tools/scripts/fetch-test-models.sh;
 # skipped when they are absent).
-find_package(Python3 COMPONENTS Interpreter)
-if(DEFINED ENV{LOBIT_MODEL_CACHE})
-  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{LOBIT_MODEL_CACHE}")
-else()
-  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{HOME}/.cache/lobit-models")
-endif()
-set(LOBIT_MODEL_CACHE "${LOBIT_MODEL_CACHE_DEFAULT}" CACHE PATH
-    "Folder of the test models (tools/scripts/fetch-test-models.sh puts them there)")
+# LOBIT_MODEL_CACHE and Python3: set in tests/CMakeLists.txt.
 if(Python3_Interpreter_FOUND)
   add_test(NAME checkpoint_cli_test
            COMMAND ${Python3_EXECUTABLE} ${CMAKE_SOURCE_DIR}/tests/cli/checkpoint_test.py $<TARGET_FILE:lobit_cli>

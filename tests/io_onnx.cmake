@@ -4,14 +4,7 @@
 # Included from tests/CMakeLists.txt.
 lobit_test(io_onnx_test SOURCES io/onnx_test.cpp LABELS unit)
 
-find_package(Python3 COMPONENTS Interpreter)
-if(DEFINED ENV{LOBIT_MODEL_CACHE})
-  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{LOBIT_MODEL_CACHE}")
-else()
-  set(LOBIT_MODEL_CACHE_DEFAULT "$ENV{HOME}/.cache/lobit-models")
-endif()
-set(LOBIT_MODEL_CACHE "${LOBIT_MODEL_CACHE_DEFAULT}" CACHE PATH
-    "Folder of the test models (tools/scripts/fetch-test-models.sh puts them there)")
+# LOBIT_MODEL_CACHE and Python3: set in tests/CMakeLists.txt.
 if(Python3_Interpreter_FOUND)
   lobit_test(io_onnx_real_models_test SOURCES io/onnx_real_models_test.cpp LABELS unit
              LIBS nlohmann_json::nlohmann_json)

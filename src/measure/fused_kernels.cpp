@@ -15,14 +15,18 @@
 
 namespace lobit::fused {
 
-KernelTable make_kernel_table(const ElementFormat& e) {
-  KernelTable k;
+namespace {
+// Both table layouts from the value table: thr' (see the header), values, codes, the
+// index of zero and the code of -0; `ok` only where every threshold is a double.
+template <class Table>
+Table fill_table(const ElementFormat& e, std::size_t max_values) {
+  Table k;
   for (double& v : k.thr) v = INFINITY;
   for (double& v : k.val) v = 0;
   if (e.bits() > 16) return k;
   const ValueTable t(e);
   const auto& th = t.thresholds();
-  if (t.values().size() > 16 || th.empty()) return k;
+  if (t.values().size() > max_values || th.empty()) return k;
   for (std::size_t j = 0; j < th.size(); ++j) {
     if (!th[j].exact_in_double()) return k;
     k.thr[j] = th[j].tie_to_upper ? std::nextafter(th[j].nearest, -INFINITY) : th[j].nearest;
@@ -36,27 +40,11 @@ KernelTable make_kernel_table(const ElementFormat& e) {
   k.ok = true;
   return k;
 }
+}  // namespace
 
-WideKernelTable make_wide_kernel_table(const ElementFormat& e) {
-  WideKernelTable k;
-  for (double& v : k.thr) v = INFINITY;
-  if (e.bits() > 16) return k;
-  const ValueTable t(e);
-  const auto& th = t.thresholds();
-  if (t.values().size() > 256 || th.empty()) return k;
-  for (std::size_t j = 0; j < th.size(); ++j) {
-    if (!th[j].exact_in_double()) return k;
-    k.thr[j] = th[j].tie_to_upper ? std::nextafter(th[j].nearest, -INFINITY) : th[j].nearest;
-  }
-  for (std::size_t i = 0; i < t.values().size(); ++i) {
-    k.code[i] = t.codes()[i];
-    k.val[i] = e.decode(t.codes()[i]);
-    if (t.values()[i] == 0) k.zero_index = static_cast<int>(i);
-  }
-  if (e.has_negative_zero() && k.zero_index >= 0) k.has_neg_zero = true, k.neg_zero_code = e.encode(-0.0);
-  k.ok = true;
-  return k;
-}
+KernelTable make_kernel_table(const ElementFormat& e) { return fill_table<KernelTable>(e, 16); }
+
+WideKernelTable make_wide_kernel_table(const ElementFormat& e) { return fill_table<WideKernelTable>(e, 256); }
 
 void flush_wide_histogram(WideHist& h, const WideKernelTable& t, std::uint64_t* hist) {
   for (std::size_t j = 0; j < h.idx.size(); ++j)

@@ -16,6 +16,7 @@
 #include <string>
 #include <vector>
 
+#include "io_test_util.hpp"
 #include "lobit/error.hpp"
 #include "lobit/io/safetensors.hpp"
 
@@ -25,25 +26,10 @@ namespace fs = std::filesystem;
 
 namespace {
 
-struct TempDir {
-  fs::path path;
-  TempDir() {
-    std::string t = (fs::temp_directory_path() / "lobit-safetensors-test-XXXXXX").string();
-    REQUIRE(::mkdtemp(t.data()) != nullptr);
-    path = t;
-  }
-  ~TempDir() {
-    std::error_code ec;
-    fs::remove_all(path, ec);
-  }
-  std::string file(const std::string& name) const { return (path / name).string(); }
+struct TempDir : test::TempDir {
+  TempDir() : test::TempDir("lobit-safetensors-test") {}
 };
-
-void write_file(const std::string& path, const std::string& bytes) {
-  std::ofstream f(path, std::ios::binary);
-  f.write(bytes.data(), static_cast<std::streamsize>(bytes.size()));
-  REQUIRE(f.good());
-}
+using test::write_file;
 
 // A safetensors file assembled by hand: the 8-byte little-endian length, the header text
 // as given, the data.

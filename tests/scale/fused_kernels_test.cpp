@@ -113,6 +113,19 @@ std::vector<float> source(const std::string& kind, std::size_t n, unsigned seed)
   return x;
 }
 
+// Inputs at every value and threshold of a table and both float32 neighbours of each,
+// also 3x (for the scale 3), signed zeros, tiny and huge values.
+std::vector<float> boundary_inputs(const ValueTable& vt) {
+  std::vector<float> xs = {0.0f, -0.0f, 1e-45f, -1e-45f, 1e-30f, -1e-30f, 3e38f, -3e38f, 1e6f, -1e6f};
+  auto add = [&](double v) {
+    const float fv = static_cast<float>(v);
+    for (float u : {fv, std::nextafter(fv, -INFINITY), std::nextafter(fv, INFINITY)}) xs.push_back(u);
+  };
+  for (double v : vt.values()) add(v), add(3 * v);
+  for (const auto& t : vt.thresholds()) add(t.nearest), add(3 * t.nearest);
+  return xs;
+}
+
 }  // namespace
 
 TEST_CASE("fused kernels: the same sums, counts and codes as quantize + accumulate") {
@@ -201,13 +214,7 @@ TEST_CASE("fused kernels: element codes equal NearestTable::encode, ties and sig
     const ValueTable vt(*f->code_element);
     // Inputs: every value, every threshold and both float32 neighbours of each, signed
     // zeros, tiny and huge values; scales 1 (power of two: y = x * 1) and 3 (y = x / 3).
-    std::vector<float> xs = {0.0f, -0.0f, 1e-45f, -1e-45f, 1e-30f, -1e-30f, 3e38f, -3e38f, 1e6f, -1e6f};
-    auto add = [&](double v) {
-      const float fv = static_cast<float>(v);
-      for (float u : {fv, std::nextafter(fv, -INFINITY), std::nextafter(fv, INFINITY)}) xs.push_back(u);
-    };
-    for (double v : vt.values()) add(v), add(3 * v);
-    for (const auto& t : vt.thresholds()) add(t.nearest), add(3 * t.nearest);
+    const std::vector<float> xs = boundary_inputs(vt);
     std::vector<std::uint64_t> hist(std::size_t{1} << f->code_element->bits(), 0);
     for (double s : {1.0, 3.0, 0.5}) {
       const bool pow2 = s != 3.0;
@@ -250,13 +257,7 @@ TEST_CASE("fused kernels: the wide kernel's codes equal NearestTable::encode, ti
     if (!kt.ok) continue;
     ++tables;
     const ValueTable vt(*f->code_element);
-    std::vector<float> xs = {0.0f, -0.0f, 1e-45f, -1e-45f, 1e-30f, -1e-30f, 3e38f, -3e38f, 1e6f, -1e6f};
-    auto add = [&](double v) {
-      const float fv = static_cast<float>(v);
-      for (float u : {fv, std::nextafter(fv, -INFINITY), std::nextafter(fv, INFINITY)}) xs.push_back(u);
-    };
-    for (double v : vt.values()) add(v), add(3 * v);
-    for (const auto& t : vt.thresholds()) add(t.nearest), add(3 * t.nearest);
+    const std::vector<float> xs = boundary_inputs(vt);
     std::vector<std::uint64_t> hist(std::size_t{1} << f->code_element->bits(), 0);
     int bad = 0;
     for (double s : {1.0, 3.0, 0.5}) {

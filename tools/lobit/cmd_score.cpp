@@ -6,6 +6,7 @@
 #include <unistd.h>
 
 #include "common.hpp"
+#include "report_text.hpp"
 #include "lobit/error.hpp"
 #include "lobit/measure/exact_error.hpp"
 #include "lobit/measure/score.hpp"
@@ -146,36 +147,18 @@ void add_score_command(CLI::App& app) {
       nlohmann::json arr = nlohmann::json::array();
       for (const auto& r : rows) {
         const ErrorReport& e = r.s.report;
-        nlohmann::json j = {
-            {"format", r.s.format},
-            {"name", r.name},
-            {"source", src->name()},
-            {"shape", {src->rows(), src->cols()}},
-            {"axis", o->axis},
-            {"seed", o->seed},
-            {"samples", e.n},
-            {"bits_per_element", r.s.bits_per_element},
-            {"scale_bit_share", r.s.scale_bit_share},
-            {"mse", e.mse},
-            {"mse_normalised", e.mse_normalised},
-            {"mse_stderr", e.mse_stderr},
-            {"sqnr_db", opt(e.sqnr_db)},
-            {"lossless", e.lossless},
-            {"sqnr_db_95", {opt(e.sqnr_low), opt(e.sqnr_high)}},
-            {"max_abs_err", e.max_abs_err},
-            {"max_err_rel_absmax", e.max_err_rel_absmax},
-            {"mean_rel_err", e.mean_rel_err},
-            {"clip_rate", e.clip_rate},
-            {"zero_rate", e.zero_rate},
-            {"top_magnitudes", {{"threshold", r.s.top_threshold}, {"count", e.top_n}, {"mse", e.top_mse}}},
-            {"codes_used", e.codes_used},
-            {"entropy_bits", e.entropy_bits},
-            {"groups", {{"count", e.groups}, {"scale_saturated", e.saturated_groups},
-                        {"scale_underflow", e.underflow_groups}, {"nan", e.nan_groups}}},
-            {"nonfinite_inputs", e.nonfinite},
-            {"ragged_last_block", r.s.ragged},
-            {"mse_exact", opt(r.mse_exact)},
-            {"sqnr_exact_db", opt(r.sqnr_exact)}};
+        nlohmann::json j = {{"format", r.s.format},
+                            {"name", r.name},
+                            {"source", src->name()},
+                            {"shape", {src->rows(), src->cols()}},
+                            {"axis", o->axis},
+                            {"seed", o->seed},
+                            {"bits_per_element", r.s.bits_per_element},
+                            {"scale_bit_share", r.s.scale_bit_share},
+                            {"ragged_last_block", r.s.ragged},
+                            {"mse_exact", opt(r.mse_exact)},
+                            {"sqnr_exact_db", opt(r.sqnr_exact)}};
+        j.update(report_json(e, r.s.top_threshold));
         arr.push_back(std::move(j));
       }
       print_json(arr);
@@ -194,13 +177,6 @@ void add_score_command(CLI::App& app) {
       }
       return;
     }
-    auto sqnr_text = [](const ErrorReport& e) {
-      if (e.lossless) return std::string("lossless");
-      if (!e.sqnr_db) return std::string("-");
-      std::string s = fmt::format("{:.3f}", *e.sqnr_db);
-      if (e.sqnr_low) s += fmt::format(" [{:.3f}, {}]", *e.sqnr_low, e.sqnr_high ? fmt::format("{:.3f}", *e.sqnr_high) : "inf");
-      return s;
-    };
     if (o->md) {
       fmt::print("Source `{}`, {} samples ({}), seed {}, reduction axis {}.\n\n", src->name(), res.elements, shape,
                  o->seed, o->axis);

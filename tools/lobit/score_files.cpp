@@ -16,6 +16,7 @@
 #include <thread>
 
 #include "common.hpp"
+#include "report_text.hpp"
 #include "lobit/error.hpp"
 #include "lobit/io/tensor_view.hpp"
 #include "lobit/measure/score.hpp"
@@ -101,37 +102,6 @@ struct FileResult {
   std::vector<std::string> skipped_text;
   std::string error;  // non-empty: the file failed
 };
-
-std::string sqnr_text(const ErrorReport& e) {
-  if (e.lossless) return "lossless";
-  if (!e.sqnr_db) return "-";
-  std::string s = fmt::format("{:.3f}", *e.sqnr_db);
-  if (e.sqnr_low) s += fmt::format(" [{:.3f}, {}]", *e.sqnr_low, e.sqnr_high ? fmt::format("{:.3f}", *e.sqnr_high) : "inf");
-  return s;
-}
-
-nlohmann::json opt(const std::optional<double>& v) { return v ? nlohmann::json(*v) : nlohmann::json(nullptr); }
-
-nlohmann::json report_json(const ErrorReport& e) {
-  return {{"scored_elements", e.n},
-          {"mse", e.mse},
-          {"mse_normalised", e.mse_normalised},
-          {"mse_stderr", e.mse_stderr},
-          {"sqnr_db", opt(e.sqnr_db)},
-          {"lossless", e.lossless},
-          {"sqnr_db_95", {opt(e.sqnr_low), opt(e.sqnr_high)}},
-          {"max_abs_err", e.max_abs_err},
-          {"max_err_rel_absmax", e.max_err_rel_absmax},
-          {"mean_rel_err", e.mean_rel_err},
-          {"clip_rate", e.clip_rate},
-          {"zero_rate", e.zero_rate},
-          {"top_magnitudes", {{"count", e.top_n}, {"mse", e.top_mse}}},
-          {"codes_used", e.codes_used},
-          {"entropy_bits", e.entropy_bits},
-          {"groups", {{"count", e.groups}, {"scale_saturated", e.saturated_groups},
-                      {"scale_underflow", e.underflow_groups}, {"nan", e.nan_groups}}},
-          {"nonfinite_inputs", e.nonfinite}};
-}
 
 double sort_key(const ErrorReport& e) { return e.lossless ? INFINITY : e.sqnr_db.value_or(-INFINITY); }
 
@@ -342,14 +312,14 @@ void score_files(const FileScoreArgs& a) {
                           {"scale_bit_share", r.s.scale_bit_share},
                           {"ragged_last_block", r.s.ragged},
                           {"finite_inputs_in_nan_groups", r.s.sums.nan_outputs}};
-      j.update(report_json(r.s.report));
+      j.update(report_json(r.s.report, r.s.top_threshold));
       jr.push_back(std::move(j));
     }
     for (const auto& [key, t] : totals) {
       nlohmann::json j = {{"file", t.file}, {"format", t.format}, {"name", t.name}, {"tensors", t.tensors},
                           {"parameters", t.params}, {"bits_per_element", t.bits()},
                           {"scale_bit_share", t.bits_weighted > 0 ? t.scale_share_weighted / t.bits_weighted : 0.0}};
-      j.update(report_json(t.report));
+      j.update(report_json(t.report, NAN));  // per tensor: see the rows
       jt.push_back(std::move(j));
     }
     for (const auto& f : files) {
