@@ -184,7 +184,11 @@ void score_files(const FileScoreArgs& a) {
           };
         ScoreResult r;
         if (a.subsample && a.subsample < t.count()) {
-          SubsetSource sub(src, a.subsample, a.seed + j);
+          // Keyed by the tensor's name (FNV-1a), so a tensor gets the same rows whatever else
+          // is selected.
+          std::uint64_t key = 0xcbf29ce484222325ull;
+          for (unsigned char ch : t.name) key = (key ^ ch) * 0x100000001b3ull;
+          SubsetSource sub(src, a.subsample, a.seed ^ key);
           r = score(fs, sub, so);
           scored[j] = sub.elements();
         } else {
