@@ -280,6 +280,10 @@ void add_fit_command(CLI::App& app) {
       for (auto& j : file_jobs) {
         const io::TensorInfo& t = info(j);
         if (j.choice.assumed) ++assumed;
+        if (t.dtype == io::DType::f64)
+          warnings.push_back(fmt::format("{}: tensor \"{}\" is f64; its statistics are of its values rounded to "
+                                         "float32",
+                                         path, t.name));
         if (!j.view.exact)
           warnings.push_back(fmt::format("{}: tensor \"{}\": the reduction axes ({}) are not contiguous in storage; "
                                          "channels taken along {} instead",

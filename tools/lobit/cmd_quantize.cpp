@@ -473,8 +473,10 @@ void add_quantize_command(CLI::App& app) {
                copied);
     for (const auto& a : as)
       if (a.format)
-        fmt::print("  {}  {}  reduced over {}{}\n", ckpt->tensors()[a.index].name, a.format->text, a.view.text,
-                   a.assumed ? " (assumed: " + a.axis_reason + ")" : "");
+        fmt::print("  {}  {}  reduced over {}{}{}\n", ckpt->tensors()[a.index].name, a.format->text, a.view.text,
+                   a.assumed ? " (assumed: " + a.axis_reason + ")" : "",
+                   ckpt->tensors()[a.index].dtype == io::DType::f64 ? " (f64 input: quantized from its float32 rounding)"
+                                                                     : "");
     for (const auto& a : as)
       if (!a.format) fmt::print("  {}  copied ({})\n", ckpt->tensors()[a.index].name, a.why);
     if (inexact)

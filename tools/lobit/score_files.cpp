@@ -236,6 +236,10 @@ void score_files(const FileScoreArgs& a) {
                                          "scored along {} instead",
                                          path, t.name, c.reason, jobs[j].view.text));
         }
+        if (t.dtype == io::DType::f64)
+          warnings.push_back(fmt::format("{}: tensor \"{}\" is f64; lobit scores float32 inputs, so its values were "
+                                         "rounded to the nearest float32 first",
+                                         path, t.name));
         bool nonfinite = false;
         for (std::size_t k = 0; k < fs.size(); ++k) {
           TensorRow r;
