@@ -9,6 +9,7 @@
 #include <numeric>
 #include <thread>
 
+#include "lobit/detail/parallel.hpp"
 #include "lobit/error.hpp"
 #include "lobit/measure/fused_kernels.hpp"
 
@@ -147,10 +148,7 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
         part[static_cast<std::size_t>(t)].add(rows_of(r0, nr, buf), nr * cols);
       }
     };
-    std::vector<std::thread> pool;
-    for (int t = 1; t < threads; ++t) pool.emplace_back(pre, t);
-    pre(0);
-    for (auto& th : pool) th.join();
+    detail::run_threads(threads, pre);
     for (auto& p : part)
       for (std::size_t b = 0; b < p.bins.size(); ++b) mh.bins[b] += p.bins[b];
   }
@@ -166,41 +164,31 @@ ScoreResult score(const std::vector<std::shared_ptr<const ScaledFormat>>& format
   std::vector<ErrorSums> per_chunk(nchunks * nf);
   std::vector<std::vector<std::vector<std::uint64_t>>> hists(static_cast<std::size_t>(threads));
   std::atomic<std::uint64_t> next{0}, done{0};
-  std::vector<std::exception_ptr> errors(static_cast<std::size_t>(threads));
   auto worker = [&](int t) {
-    try {
-      std::vector<ErrorAccumulator> acc;
-      for (std::size_t i = 0; i < nf; ++i) acc.emplace_back(*formats[i], res.top_threshold);
-      std::vector<float> buf;
-      for (;;) {
-        const std::uint64_t c = next.fetch_add(1);
-        if (c >= nchunks) break;
-        const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
-        const float* data = rows_of(r0, nr, buf);
-        for (std::size_t i = 0; i < nf; ++i) {
-          acc[i].sums() = ErrorSums{};
-          if (acc[i].rows_fused_ok(o.axis) && !o.unfused)
-            acc[i].add_rows_fused(plans[i], r0, nr, data);
-          else if (acc[i].fused_ok() && !o.unfused)
-            scan_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add_fused(g); });
-          else
-            quantize_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add(g); });
-          per_chunk[c * nf + i] = acc[i].sums();
-        }
-        const std::uint64_t d = done.fetch_add(1) + 1;
-        if (t == 0 && o.progress) o.progress(d, nchunks);
+    std::vector<ErrorAccumulator> acc;
+    for (std::size_t i = 0; i < nf; ++i) acc.emplace_back(*formats[i], res.top_threshold);
+    std::vector<float> buf;
+    for (;;) {
+      const std::uint64_t c = next.fetch_add(1);
+      if (c >= nchunks) break;
+      const std::uint64_t r0 = c * chunk_rows, nr = std::min(chunk_rows, rows - r0);
+      const float* data = rows_of(r0, nr, buf);
+      for (std::size_t i = 0; i < nf; ++i) {
+        acc[i].sums() = ErrorSums{};
+        if (acc[i].rows_fused_ok(o.axis) && !o.unfused)
+          acc[i].add_rows_fused(plans[i], r0, nr, data);
+        else if (acc[i].fused_ok() && !o.unfused)
+          scan_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add_fused(g); });
+        else
+          quantize_rows(*formats[i], plans[i], r0, nr, data, [&](const GroupView& g) { acc[i].add(g); });
+        per_chunk[c * nf + i] = acc[i].sums();
       }
-      for (auto& a : acc) hists[static_cast<std::size_t>(t)].push_back(std::move(a.histogram()));
-    } catch (...) {
-      errors[static_cast<std::size_t>(t)] = std::current_exception();
+      const std::uint64_t d = done.fetch_add(1) + 1;
+      if (t == 0 && o.progress) o.progress(d, nchunks);
     }
+    for (auto& a : acc) hists[static_cast<std::size_t>(t)].push_back(std::move(a.histogram()));
   };
-  std::vector<std::thread> pool;
-  for (int t = 1; t < threads; ++t) pool.emplace_back(worker, t);
-  worker(0);
-  for (auto& th : pool) th.join();
-  for (auto& e : errors)
-    if (e) std::rethrow_exception(e);
+  detail::run_threads(threads, worker);
 
   for (std::size_t i = 0; i < nf; ++i) {
     const ScaledFormat& f = *formats[i];

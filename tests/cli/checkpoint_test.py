@@ -257,6 +257,23 @@ p = run("score", "mxfp4", "--source", bad, "--source", models["silero"], "--keep
         expect=2)
 check("1 of 2 files failed" in p.stderr + p.stdout and "silero_vad.onnx (onnx)" in p.stdout,
       "--keep-going reports the good file and counts the failed one")
+# A member whose deflate stream turns out corrupt while a worker thread reads it: one line, exit 2.
+import random
+import zipfile
+crc = os.path.join(tmp, "crc.npz")
+rv = random.Random(3)
+body = struct.pack("<%df" % (2048 * 1024), *[rv.gauss(0, 1) for _ in range(2048 * 1024)])
+d = "{'descr': '<f4', 'fortran_order': False, 'shape': (2048, 1024), }"
+h = (d + " " * (-(10 + len(d) + 1) % 64) + "\n").encode()
+with zipfile.ZipFile(crc, "w", compression=zipfile.ZIP_DEFLATED) as z:
+    z.writestr("w.npy", b"\x93NUMPY\x01\x00" + struct.pack("<H", len(h)) + h + body)
+raw = bytearray(open(crc, "rb").read())
+raw[len(raw) // 2] ^= 0xFF
+open(crc, "wb").write(bytes(raw))
+for threads in ("1", "2"):
+    p = run("score", "mxfp4", "--source", crc, "--threads", threads, expect=2)
+    check(crc in p.stderr and "CRC" in p.stderr and p.stderr.count("\n") == 1,
+          "a corrupt npz member found mid-read (threads %s): one line, exit 2" % threads)
 dest = os.path.join(tmp, "never.safetensors")
 run("quantize", bad, "--format", "mxfp4", "--out", dest, expect=2)
 check(not os.path.exists(dest), "no output file after a failed quantize")

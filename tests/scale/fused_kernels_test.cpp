@@ -12,6 +12,7 @@
 #include <string>
 #include <vector>
 
+#include "lobit/error.hpp"
 #include "lobit/format/value_table.hpp"
 #include "lobit/measure/fused_kernels.hpp"
 #include "lobit/measure/metrics.hpp"
@@ -358,6 +359,33 @@ TEST_CASE("score: the top-magnitude threshold of the pruned pre-pass equals the 
         CHECK(r.top_threshold == reference(x, fraction));
         CHECK(r.rows[0].report.top_n >= 1);
       }
+    }
+  }
+}
+
+namespace {
+// A source whose reads fail past a row (a file that turns out corrupt mid-way).
+class FailingSource final : public TensorSource {
+ public:
+  std::uint64_t rows() const override { return 4096; }
+  std::uint64_t cols() const override { return 256; }
+  std::string name() const override { return "failing"; }
+  void fill_rows(std::uint64_t row0, std::uint64_t nrows, float* out) const override {
+    if (row0 + nrows > 1000) throw usage_error("a read failed", "failing source");
+    for (std::uint64_t i = 0; i < nrows * cols(); ++i) out[i] = static_cast<float>(i % 7) - 3.0f;
+  }
+};
+}  // namespace
+
+TEST_CASE("score(): a source that fails on any thread gives its error back, in every pass") {
+  const FailingSource src;
+  for (const char* spec : {"e2m1@32:e8m0", "int4@tensor:fp32"}) {  // threaded pre-pass; plan pre-pass
+    for (int threads : {1, 2}) {
+      INFO(spec << " threads " << threads);
+      ScoreOptions o;
+      o.threads = threads;
+      o.chunk_elements = 256 * 64;
+      CHECK_THROWS_WITH_AS(score({parse_scaled(spec)}, src, o), doctest::Contains("a read failed"), Error);
     }
   }
 }

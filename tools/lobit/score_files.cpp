@@ -17,6 +17,7 @@
 
 #include "common.hpp"
 #include "report_text.hpp"
+#include "lobit/detail/parallel.hpp"
 #include "lobit/error.hpp"
 #include "lobit/io/tensor_view.hpp"
 #include "lobit/measure/score.hpp"
@@ -209,20 +210,9 @@ void score_files(const FileScoreArgs& a) {
       }
       if (!small.empty()) {
         std::atomic<std::size_t> next{0};
-        std::vector<std::exception_ptr> errs(static_cast<std::size_t>(threads));
-        auto worker = [&](int w) {
-          try {
-            for (std::size_t k; (k = next.fetch_add(1)) < small.size();) run(small[k], 1);
-          } catch (...) {
-            errs[static_cast<std::size_t>(w)] = std::current_exception();
-          }
-        };
-        std::vector<std::thread> pool;
-        for (int w = 1; w < threads; ++w) pool.emplace_back(worker, w);
-        worker(0);
-        for (auto& th : pool) th.join();
-        for (auto& e : errs)
-          if (e) std::rethrow_exception(e);
+        detail::run_threads(threads, [&](int) {
+          for (std::size_t k; (k = next.fetch_add(1)) < small.size();) run(small[k], 1);
+        });
       }
       if (tty) std::fprintf(stderr, "\r%120s\r", "");
       for (std::size_t j = 0; j < jobs.size(); ++j) {
