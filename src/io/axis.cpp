@@ -13,23 +13,30 @@ namespace {
 
 const char* kAxesHint = "write GLOB=AXES, e.g. 'encoder.*=0', '*.weight=last' or 'conv*=1-3'";
 
-int parse_axis_number(std::string_view s, int rank, const std::string& rule, const TensorInfo& t) {
+// An axis number of a rule. With a tensor, negative numbers count from its end and the
+// number must name one of its axes; without one (checking a rule as it is parsed) only
+// the spelling is checked.
+int parse_axis_number(std::string_view s, const TensorInfo* t, const std::string& rule) {
   int v = 0;
   const char* b = s.data();
   const char* e = s.data() + s.size();
   auto [p, ec] = std::from_chars(b, e, v);
   if (ec != std::errc() || p != e)
     throw usage_error(fmt::format("'{}' is not an axis number", s), fmt::format("--axis {}", rule), kAxesHint);
+  if (!t) return v;
+  const int rank = static_cast<int>(t->shape.size());
   const int r = std::max(rank, 1);
   if (v < 0) v += r;
   if (v < 0 || v >= r)
-    throw usage_error(fmt::format("tensor \"{}\" has rank {} {}, so it has no axis {}", t.name, rank, t.shape_text(), s),
-                      fmt::format("--axis {}", rule), "narrow the pattern or use an axis from 0 to rank - 1");
+    throw usage_error(
+        fmt::format("tensor \"{}\" has rank {} {}, so it has no axis {}", t->name, rank, t->shape_text(), s),
+        fmt::format("--axis {}", rule), "narrow the pattern or use an axis from 0 to rank - 1");
   return v;
 }
 
-std::vector<int> resolve(const AxisRule& rule, const TensorInfo& t) {
-  const int rank = static_cast<int>(t.shape.size());
+// The axes a rule names for tensor t (sorted, no repeats); t null: the syntax only.
+std::vector<int> resolve(const AxisRule& rule, const TensorInfo* t) {
+  const int rank = t ? static_cast<int>(t->shape.size()) : 1;
   const std::string text = rule.glob + "=" + rule.axes;
   if (rule.axes == "last") return {std::max(rank, 1) - 1};
   if (rule.axes == "first") return {0};
@@ -41,13 +48,14 @@ std::vector<int> resolve(const AxisRule& rule, const TensorInfo& t) {
     rest = comma == std::string_view::npos ? std::string_view{} : rest.substr(comma + 1);
     const std::size_t dash = item.find('-', 1);  // a leading '-' is a sign
     if (dash != std::string_view::npos) {
-      const int a = parse_axis_number(item.substr(0, dash), rank, text, t);
-      const int b = parse_axis_number(item.substr(dash + 1), rank, text, t);
-      if (b < a)
+      const int a = parse_axis_number(item.substr(0, dash), t, text);
+      const int b = parse_axis_number(item.substr(dash + 1), t, text);
+      // Without a tensor, a range with a negative end is ordered only once resolved.
+      if (b < a && (t || (a >= 0 && b >= 0)))
         throw usage_error(fmt::format("the range {} runs backwards", item), fmt::format("--axis {}", text), kAxesHint);
-      for (int k = a; k <= b; ++k) out.push_back(k);
+      for (int k = a; k <= b && t; ++k) out.push_back(k);
     } else {
-      out.push_back(parse_axis_number(item, rank, text, t));
+      out.push_back(parse_axis_number(item, t, text));
     }
   }
   std::sort(out.begin(), out.end());
@@ -80,17 +88,13 @@ AxisRule parse_axis_rule(std::string_view text) {
   if (eq == std::string_view::npos || eq == 0 || eq + 1 == text.size())
     throw usage_error(fmt::format("'{}' is not a rule", text), "--axis", kAxesHint);
   AxisRule r{std::string(text.substr(0, eq)), std::string(text.substr(eq + 1))};
-  // Check the syntax now, against a tensor of high rank.
-  TensorInfo probe;
-  probe.name = "(check)";
-  probe.shape.assign(16, 2);
-  (void)resolve(r, probe);
+  (void)resolve(r, nullptr);  // the spelling now; the axes against each matching tensor later
   return r;
 }
 
 AxisChoice choose_axes(const TensorInfo& t, const std::vector<AxisRule>& rules) {
   for (const AxisRule& r : rules)
-    if (glob_match(r.glob, t.name)) return {resolve(r, t), fmt::format("rule '{}={}'", r.glob, r.axes), false};
+    if (glob_match(r.glob, t.name)) return {resolve(r, &t), fmt::format("rule '{}={}'", r.glob, r.axes), false};
   if (t.axis_hint && !t.axis_hint->reduce.empty())
     return {t.axis_hint->reduce, "from the graph: " + t.axis_hint->reason, false};
   const int rank = static_cast<int>(t.shape.size());

@@ -223,6 +223,14 @@ TEST_CASE("choose_axes: a rule, then the file's hint, then the default by rank")
   CHECK(choose_axes(tensor({7}), {}).reduce == std::vector<int>{0});
   CHECK_THROWS_WITH_AS(choose_axes(tensor({2, 3}), {parse_axis_rule("w=2")}), doctest::Contains("has no axis 2"),
                        Error);
+  // A rule is checked for its spelling when parsed and for its axes against each tensor
+  // it matches: axis 20 is a fine rule, and an error only for a tensor it matches.
+  CHECK_NOTHROW(parse_axis_rule("big*=20"));
+  CHECK_NOTHROW(parse_axis_rule("w=-3--1"));
+  CHECK(choose_axes(tensor({2, 3, 4}), {parse_axis_rule("w=-3--2")}).reduce == std::vector<int>{0, 1});
+  CHECK(choose_axes(tensor({2, 3}), {parse_axis_rule("big*=20")}).assumed);  // no match: the default
+  CHECK_THROWS_WITH_AS(choose_axes(tensor({2, 3}), {parse_axis_rule("w=-1--2")}), doctest::Contains("backwards"),
+                       Error);
   CHECK_THROWS_AS(parse_axis_rule("noequals"), Error);
   CHECK_THROWS_AS(parse_axis_rule("w=x"), Error);
   CHECK_THROWS_AS(parse_axis_rule("w=3-1"), Error);
