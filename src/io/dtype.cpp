@@ -85,37 +85,42 @@ float half_to_float(std::uint16_t h) {
   return std::bit_cast<float>(bits);
 }
 
+// out[i] = f(element i): one loop per element type, chosen once per call.
+template <class T, class F>
+void each(const unsigned char* src, std::size_t n, std::size_t width, T* out, F f) {
+  for (std::size_t i = 0; i < n; ++i) out[i] = static_cast<T>(f(src + i * width));
+}
+
 template <class T>
 void decode(DType t, const unsigned char* src, std::size_t n, bool be, T* out) {
   const Tables& tb = tables();
-  const int w = dtype_bytes(t);
-  for (std::size_t i = 0; i < n; ++i) {
-    const unsigned char* p = src + i * static_cast<std::size_t>(w);
-    T v;
-    switch (t) {
-      case DType::f64: v = static_cast<T>(std::bit_cast<double>(load<std::uint64_t>(p, be))); break;
-      case DType::f32: v = static_cast<T>(std::bit_cast<float>(load<std::uint32_t>(p, be))); break;
-      case DType::f16: v = static_cast<T>(half_to_float(load<std::uint16_t>(p, be))); break;
-      case DType::bf16:
-        v = static_cast<T>(std::bit_cast<float>(static_cast<std::uint32_t>(load<std::uint16_t>(p, be)) << 16));
-        break;
-      case DType::f8_e4m3: v = static_cast<T>(tb.e4m3[*p]); break;
-      case DType::f8_e5m2: v = static_cast<T>(tb.e5m2[*p]); break;
-      case DType::f8_e4m3_nz: v = static_cast<T>(tb.e4m3_nz[*p]); break;
-      case DType::f8_e5m2_nz: v = static_cast<T>(tb.e5m2_nz[*p]); break;
-      case DType::i8: v = static_cast<T>(static_cast<std::int8_t>(*p)); break;
-      case DType::u8: v = static_cast<T>(*p); break;
-      case DType::boolean: v = static_cast<T>(*p != 0); break;
-      case DType::i16: v = static_cast<T>(static_cast<std::int16_t>(load<std::uint16_t>(p, be))); break;
-      case DType::u16: v = static_cast<T>(load<std::uint16_t>(p, be)); break;
-      case DType::i32: v = static_cast<T>(static_cast<std::int32_t>(load<std::uint32_t>(p, be))); break;
-      case DType::u32: v = static_cast<T>(load<std::uint32_t>(p, be)); break;
-      case DType::i64: v = static_cast<T>(static_cast<std::int64_t>(load<std::uint64_t>(p, be))); break;
-      case DType::u64: v = static_cast<T>(load<std::uint64_t>(p, be)); break;
-      default: v = std::numeric_limits<T>::quiet_NaN();
-    }
-    out[i] = v;
+  const std::size_t w = static_cast<std::size_t>(dtype_bytes(t));
+  switch (t) {
+    case DType::f64: return each(src, n, w, out, [&](auto p) { return std::bit_cast<double>(load<std::uint64_t>(p, be)); });
+    case DType::f32: return each(src, n, w, out, [&](auto p) { return std::bit_cast<float>(load<std::uint32_t>(p, be)); });
+    case DType::f16: return each(src, n, w, out, [&](auto p) { return half_to_float(load<std::uint16_t>(p, be)); });
+    case DType::bf16:
+      return each(src, n, w, out, [&](auto p) {
+        return std::bit_cast<float>(static_cast<std::uint32_t>(load<std::uint16_t>(p, be)) << 16);
+      });
+    case DType::f8_e4m3: return each(src, n, w, out, [&](auto p) { return tb.e4m3[*p]; });
+    case DType::f8_e5m2: return each(src, n, w, out, [&](auto p) { return tb.e5m2[*p]; });
+    case DType::f8_e4m3_nz: return each(src, n, w, out, [&](auto p) { return tb.e4m3_nz[*p]; });
+    case DType::f8_e5m2_nz: return each(src, n, w, out, [&](auto p) { return tb.e5m2_nz[*p]; });
+    case DType::i8: return each(src, n, w, out, [](auto p) { return static_cast<std::int8_t>(*p); });
+    case DType::u8: return each(src, n, w, out, [](auto p) { return *p; });
+    case DType::boolean: return each(src, n, w, out, [](auto p) { return *p != 0; });
+    case DType::i16:
+      return each(src, n, w, out, [&](auto p) { return static_cast<std::int16_t>(load<std::uint16_t>(p, be)); });
+    case DType::u16: return each(src, n, w, out, [&](auto p) { return load<std::uint16_t>(p, be); });
+    case DType::i32:
+      return each(src, n, w, out, [&](auto p) { return static_cast<std::int32_t>(load<std::uint32_t>(p, be)); });
+    case DType::u32: return each(src, n, w, out, [&](auto p) { return load<std::uint32_t>(p, be); });
+    case DType::i64:
+      return each(src, n, w, out, [&](auto p) { return static_cast<std::int64_t>(load<std::uint64_t>(p, be)); });
+    case DType::u64: return each(src, n, w, out, [&](auto p) { return load<std::uint64_t>(p, be); });
   }
+  each(src, n, w, out, [](auto) { return std::numeric_limits<T>::quiet_NaN(); });
 }
 
 }  // namespace
