@@ -497,17 +497,8 @@ QuantizedTensor quantize_tensor(const ScaledFormat& f, std::span<const float> da
   out.scales.assign(plan.group_count, 0.0);
   out.scale_codes.assign(plan.group_count, 0);
   if (f.zero) out.zeros.assign(plan.group_count, 0.0);
-  const float* base = data.data();
-  quantize_rows(f, plan, 0, rows, base, [&](const GroupView& g) {
-    const std::size_t off = static_cast<std::size_t>(g.x - base);
-    for (std::size_t i = 0; i < g.n; ++i) {
-      out.codes[off + i * g.stride] = g.codes[i];
-      out.values[off + i * g.stride] = g.values[i];
-    }
-    // One call over the whole tensor visits every group once, except a single
-    // tensor-wide (or fixed) scale, which comes with every row: record it once.
-    const bool one_scale = f.granularity == Granularity::fixed || f.granularity == Granularity::tensor;
-    if (one_scale && g.x != base) return;
+  const bool one_scale = f.granularity == Granularity::fixed || f.granularity == Granularity::tensor;
+  quantize_rows_dense(f, plan, 0, rows, data.data(), out.codes.data(), out.values.data(), [&](const GroupView& g) {
     const std::uint64_t gi = one_scale ? 0 : g.index;
     out.scales[gi] = g.scale->scale;
     out.scale_codes[gi] = g.scale->scale_code;

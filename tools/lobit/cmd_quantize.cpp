@@ -152,7 +152,6 @@ void quantize_stream(const io::Checkpoint& c, const Assignment& a, ChunkSink&& c
   std::vector<float> in;
   std::vector<Code> codes;
   std::vector<double> values;
-  const bool one_scale = f.granularity == Granularity::fixed || f.granularity == Granularity::tensor;
   for (std::uint64_t r0 = 0; r0 < a.view.rows; r0 += step) {
     const std::uint64_t n = std::min(step, a.view.rows - r0);
     const std::size_t m = static_cast<std::size_t>(n * a.view.cols);
@@ -160,17 +159,7 @@ void quantize_stream(const io::Checkpoint& c, const Assignment& a, ChunkSink&& c
     codes.assign(m, 0);
     values.assign(m, 0.0);
     src.fill_rows(r0, n, in.data());
-    const float* base = in.data();
-    quantize_rows(f, a.plan, r0, n, base, [&](const GroupView& g) {
-      const std::size_t off = static_cast<std::size_t>(g.x - base);
-      for (std::size_t i = 0; i < g.n; ++i) {
-        codes[off + i * g.stride] = g.codes[i];
-        values[off + i * g.stride] = g.values[i];
-      }
-      const bool first_of_col = f.granularity != Granularity::col || r0 == 0;
-      if ((one_scale && (r0 != 0 || g.x != base)) || !first_of_col) return;
-      group(g);
-    });
+    quantize_rows_dense(f, a.plan, r0, n, in.data(), codes.data(), values.data(), group);
     chunk(r0, n, in, codes, values);
   }
 }

@@ -185,4 +185,25 @@ void scan_rows(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0
       [](void* ctx, const GroupView& g) { (*static_cast<std::remove_reference_t<Visit>*>(ctx))(g); }, true);
 }
 
+// quantize_rows into dense outputs: the codes and dequantized values of rows row0 ..
+// row0 + nrows - 1 at their inputs' positions (row-major from row0), and new_group(g)
+// once for every group of the tensor over a whole pass of chunks in order. A
+// tensor-wide (or fixed) scale comes with every row and a column's with every chunk: they
+// are reported from the chunk at row 0 only, once.
+template <class NewGroup>
+void quantize_rows_dense(const ScaledFormat& f, const TensorPlan& plan, std::uint64_t row0, std::uint64_t nrows,
+                         const float* data, Code* codes, double* values, NewGroup&& new_group) {
+  const bool one_scale = f.granularity == Granularity::fixed || f.granularity == Granularity::tensor;
+  const bool per_column = f.granularity == Granularity::col;
+  quantize_rows(f, plan, row0, nrows, data, [&](const GroupView& g) {
+    const std::size_t off = static_cast<std::size_t>(g.x - data);
+    for (std::size_t i = 0; i < g.n; ++i) {
+      codes[off + i * g.stride] = g.codes[i];
+      values[off + i * g.stride] = g.values[i];
+    }
+    if ((one_scale && (row0 != 0 || g.x != data)) || (per_column && row0 != 0)) return;
+    new_group(g);
+  });
+}
+
 }  // namespace lobit
