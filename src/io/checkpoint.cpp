@@ -3,6 +3,7 @@
 #include "lobit/io/checkpoint.hpp"
 
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 
 #include <algorithm>
 #include <vector>
@@ -22,11 +23,9 @@ std::uint64_t TensorInfo::count() const {
   return n;
 }
 
-std::string TensorInfo::shape_text() const {
-  std::string s = "[";
-  for (std::size_t i = 0; i < shape.size(); ++i) s += (i ? ", " : "") + std::to_string(shape[i]);
-  return s + "]";
-}
+std::string shape_text(std::span<const std::uint64_t> shape) { return fmt::format("[{}]", fmt::join(shape, ", ")); }
+
+std::string TensorInfo::shape_text() const { return io::shape_text(shape); }
 
 std::string quoted_name(std::string_view s) {
   if (s.size() <= 200) return fmt::format("{:?}", s);

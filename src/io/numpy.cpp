@@ -2,6 +2,7 @@
 // single-array reader, and the streaming writer. The .npz reader (npz.cpp) shares the
 // header parser.
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 
 #include <algorithm>
 #include <cstring>
@@ -351,9 +352,7 @@ std::string npy_header(const std::string& path, DType dtype, const std::vector<s
   if (shape.size() > npy_max_rank)
     throw usage_error(fmt::format("{} axes, more than the {} a .npy header may have here", shape.size(), npy_max_rank),
                       path);
-  std::string tuple = "(";
-  for (std::size_t i = 0; i < shape.size(); ++i) tuple += (i ? ", " : "") + std::to_string(shape[i]);
-  tuple += shape.size() == 1 ? ",)" : ")";
+  std::string tuple = fmt::format("({}{})", fmt::join(shape, ", "), shape.size() == 1 ? "," : "");
   std::uint64_t count = 1;
   bool overflow = false;
   for (std::uint64_t d : shape) overflow = overflow || __builtin_mul_overflow(count, d, &count);

@@ -169,11 +169,6 @@ int wire_width(DataField f) {
 }
 
 
-std::string dims_text(const std::vector<std::uint64_t>& d) {
-  std::string s = "[";
-  for (std::size_t i = 0; i < d.size(); ++i) s += (i ? ", " : "") + std::to_string(d[i]);
-  return s + "]";
-}
 
 constexpr std::string_view hint_damaged = "the file is damaged or was written by a faulty exporter";
 
@@ -722,11 +717,11 @@ class ModelReader {
     std::uint64_t count = 1;
     for (std::uint64_t d : p.dims)
       if (__builtin_mul_overflow(count, d, &count))
-        refuse(fmt::format("dims {} have more than 2^64 elements", dims_text(p.dims)));
+        refuse(fmt::format("dims {} have more than 2^64 elements", shape_text(p.dims)));
     std::uint64_t bytes = 0;
     if (__builtin_mul_overflow(count, static_cast<std::uint64_t>(dtype_bytes(dtype)), &bytes))
-      refuse(fmt::format("dims {} of {} need more than 2^64 bytes", dims_text(p.dims), type->name));
-    const std::string need = fmt::format("dims {} of {} need {} bytes", dims_text(p.dims), type->name, bytes);
+      refuse(fmt::format("dims {} of {} need more than 2^64 bytes", shape_text(p.dims), type->name));
+    const std::string need = fmt::format("dims {} of {} need {} bytes", shape_text(p.dims), type->name, bytes);
 
     // Which field holds the elements: exactly one may.
     Layout l;
@@ -774,7 +769,7 @@ class ModelReader {
         n = decode_typed(*file_, l, dtype, graph_name, [](const unsigned char*, std::size_t) {});
       }
       if (n != count)
-        refuse(fmt::format("{} holds {} values but dims {} need {}", field_name(field), n, dims_text(p.dims), count));
+        refuse(fmt::format("{} holds {} values but dims {} need {}", field_name(field), n, shape_text(p.dims), count));
     }
 
     // Unique names: the first keeps its own; later ones are qualified by their subgraph.
@@ -845,7 +840,7 @@ class ModelReader {
     const std::uint64_t offset = number("offset", 0);
     const std::uint64_t length = number("length", bytes);
     if (length != bytes)
-      refuse(fmt::format("external data length {} but dims {} need {} bytes", length, dims_text(p.dims), bytes));
+      refuse(fmt::format("external data length {} but dims {} need {} bytes", length, shape_text(p.dims), bytes));
     if (offset > size || length > size - offset)
       refuse(fmt::format("external data of {} bytes at offset {} passes the end of {} ({} bytes)", length, offset,
                          full.string(), size),

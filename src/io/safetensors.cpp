@@ -6,6 +6,7 @@
 #include "lobit/io/safetensors.hpp"
 
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 
 #include <algorithm>
 #include <charconv>
@@ -54,12 +55,6 @@ std::string known_dtypes() {
 }
 
 // A name as it appears in a one-line message: quoted, with escapes for control characters
-
-std::string shape_text(const std::vector<std::uint64_t>& shape) {
-  TensorInfo t;
-  t.shape = shape;
-  return t.shape_text();
-}
 
 bool mul_overflows(std::uint64_t a, std::uint64_t b, std::uint64_t& out) { return __builtin_mul_overflow(a, b, &out); }
 
@@ -788,7 +783,7 @@ std::string build_header(const std::string& path, const std::vector<PlannedTenso
                                     shape_text(t.shape)),
                         path);
     text += (text.size() > 1 ? "," : "") + str(t.name) + ":{\"dtype\":\"" + std::string(dname) + "\",\"shape\":[";
-    for (std::size_t i = 0; i < t.shape.size(); ++i) text += (i ? "," : "") + std::to_string(t.shape[i]);
+    text += fmt::format("{}", fmt::join(t.shape, ","));
     text += fmt::format("],\"data_offsets\":[{},{}]}}", offset, end);
     offset = end;
   }

@@ -2,6 +2,7 @@
 #include "lobit/io/tensor_view.hpp"
 
 #include <fmt/format.h>
+#include <fmt/ranges.h>
 
 #include <algorithm>
 
@@ -17,8 +18,7 @@ std::string axes_text(const std::vector<int>& r) {
   if (r.size() == 1) return fmt::format("axis {}", r[0]);
   if (run) return fmt::format("axes {}-{}", r.front(), r.back());
   std::string s = "axes ";
-  for (std::size_t i = 0; i < r.size(); ++i) s += (i ? "," : "") + std::to_string(r[i]);
-  return s;
+  return s + fmt::format("{}", fmt::join(r, ","));
 }
 
 }  // namespace

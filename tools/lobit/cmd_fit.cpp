@@ -63,11 +63,7 @@ std::vector<std::uint64_t> coords_of(const io::TensorInfo& t, std::uint64_t flat
   return c;
 }
 
-std::string coords_text(const std::vector<std::uint64_t>& c) {
-  std::string s = "[";
-  for (std::size_t i = 0; i < c.size(); ++i) s += (i ? ", " : "") + std::to_string(c[i]);
-  return s + "]";
-}
+std::string coords_text(const std::vector<std::uint64_t>& c) { return io::shape_text(c); }
 
 nlohmann::json num(double v) { return json_value(v); }
 

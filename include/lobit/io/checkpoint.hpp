@@ -5,6 +5,7 @@
 #include <cstdint>
 #include <memory>
 #include <optional>
+#include <span>
 #include <string>
 #include <string_view>
 #include <vector>
@@ -67,6 +68,9 @@ class Checkpoint {
   virtual Extent locate(std::size_t i) const = 0;
   std::vector<TensorInfo> tensors_;
 };
+
+// "[4096, 11008]" ("[]" for a scalar).
+std::string shape_text(std::span<const std::uint64_t> shape);
 
 // A tensor or member name as it appears in a one-line message: quoted and escaped,
 // names longer than 200 bytes shortened.
