@@ -176,4 +176,26 @@ void AtomicFileWriter::commit() {
   committed_ = true;
 }
 
+PlannedFileWriter::PlannedFileWriter(std::string path, const std::string& header, std::uint64_t data_bytes,
+                                     std::string what)
+    : out_(std::move(path)), data_bytes_(data_bytes), what_(std::move(what)) {
+  out_.write(header.data(), header.size());
+}
+
+void PlannedFileWriter::write(const void* data, std::uint64_t nbytes) {
+  if (nbytes > data_bytes_ - written_)
+    throw Error(Error::Kind::internal,
+                fmt::format("{} more bytes written than {}'s {}", nbytes - (data_bytes_ - written_), what_, data_bytes_),
+                out_.path());
+  out_.write(data, nbytes);
+  written_ += nbytes;
+}
+
+void PlannedFileWriter::commit() {
+  if (written_ != data_bytes_)
+    throw Error(Error::Kind::internal,
+                fmt::format("{} of {}'s {} data bytes were written", written_, what_, data_bytes_), out_.path());
+  out_.commit();
+}
+
 }  // namespace lobit::io

@@ -375,23 +375,11 @@ std::string npy_header(const std::string& path, DType dtype, const std::vector<s
 }  // namespace
 
 NpyWriter::NpyWriter(std::string path, DType dtype, std::vector<std::uint64_t> shape)
-    : header_(npy_header(path, dtype, shape, data_bytes_)), out_(std::move(path)) {
-  out_.write(header_.data(), header_.size());
-}
+    : header_(npy_header(path, dtype, shape, data_bytes_)), out_(std::move(path), header_, data_bytes_, "the array") {}
 
-void NpyWriter::write(const void* data, std::uint64_t nbytes) {
-  if (nbytes > data_bytes_ - written_)
-    throw Error(Error::Kind::internal,
-                fmt::format("{} more bytes written than the array's {}", nbytes - (data_bytes_ - written_), data_bytes_),
-                out_.path());
-  out_.write(data, nbytes);
-  written_ += nbytes;
-}
+void NpyWriter::write(const void* data, std::uint64_t nbytes) { out_.write(data, nbytes); }
 
 void NpyWriter::commit() {
-  if (written_ != data_bytes_)
-    throw Error(Error::Kind::internal, fmt::format("{} of the array's {} data bytes were written", written_, data_bytes_),
-                out_.path());
   out_.commit();
 }
 

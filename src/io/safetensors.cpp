@@ -805,23 +805,12 @@ std::string build_header(const std::string& path, const std::vector<PlannedTenso
 
 SafetensorsWriter::SafetensorsWriter(std::string path, std::vector<PlannedTensor> plan,
                                      std::vector<std::pair<std::string, std::string>> metadata)
-    : header_(build_header(path, plan, metadata, data_bytes_)), out_(std::move(path)) {
-  out_.write(header_.data(), header_.size());
-}
+    : header_(build_header(path, plan, metadata, data_bytes_)),
+      out_(std::move(path), header_, data_bytes_, "the plan") {}
 
-void SafetensorsWriter::write(const void* data, std::uint64_t nbytes) {
-  if (nbytes > data_bytes_ - written_)
-    throw Error(Error::Kind::internal,
-                fmt::format("{} more bytes written than the plan's {}", nbytes - (data_bytes_ - written_), data_bytes_),
-                out_.path());
-  out_.write(data, nbytes);
-  written_ += nbytes;
-}
+void SafetensorsWriter::write(const void* data, std::uint64_t nbytes) { out_.write(data, nbytes); }
 
 void SafetensorsWriter::commit() {
-  if (written_ != data_bytes_)
-    throw Error(Error::Kind::internal,
-                fmt::format("{} of the plan's {} data bytes were written", written_, data_bytes_), out_.path());
   out_.commit();
 }
 

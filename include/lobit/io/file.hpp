@@ -77,4 +77,20 @@ class AtomicFileWriter {
   std::vector<unsigned char> buf_;  // small writes are gathered into 1 MiB system calls
 };
 
+// An AtomicFileWriter for a header followed by a known number of data bytes (the
+// streaming safetensors and .npy writers): writing past them, or committing short of
+// them, is an internal error that names the file and `what` the bytes belong to ("the
+// plan", "the array").
+class PlannedFileWriter {
+ public:
+  PlannedFileWriter(std::string path, const std::string& header, std::uint64_t data_bytes, std::string what);
+  void write(const void* data, std::uint64_t nbytes);
+  void commit();
+
+ private:
+  AtomicFileWriter out_;
+  std::uint64_t data_bytes_, written_ = 0;
+  std::string what_;
+};
+
 }  // namespace lobit::io

@@ -85,8 +85,7 @@ class NpyWriter {
  private:
   std::uint64_t data_bytes_ = 0;
   std::string header_;  // built (and the type checked) before the file is created
-  AtomicFileWriter out_;
-  std::uint64_t written_ = 0;
+  PlannedFileWriter out_;
 };
 
 }  // namespace lobit::io

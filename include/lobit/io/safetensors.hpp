@@ -72,8 +72,7 @@ class SafetensorsWriter {
   // temporary file is created.
   std::uint64_t data_bytes_ = 0;
   std::string header_;
-  AtomicFileWriter out_;
-  std::uint64_t written_ = 0;
+  PlannedFileWriter out_;
 };
 
 }  // namespace lobit::io
